@@ -1,0 +1,3 @@
+module github.com/beliefd/beliefd
+
+go 1.26.8
