@@ -371,9 +371,20 @@ func findCycle(doc *Document, index map[string]int, indeg []int) []string {
 		if at, ok := seenAt[cur]; ok {
 			cyc := path[at:]
 			// path follows parent links (child -> parent); print in arc direction parent -> child.
-			names := make([]string, 0, len(cyc)+1)
+			// Start at the variable that comes first in the document.
+			arc := make([]int, 0, len(cyc))
 			for k := len(cyc) - 1; k >= 0; k-- {
-				names = append(names, doc.Variables[cyc[k]].Name)
+				arc = append(arc, cyc[k])
+			}
+			first := 0
+			for k := range arc {
+				if arc[k] < arc[first] {
+					first = k
+				}
+			}
+			names := make([]string, 0, len(arc)+1)
+			for k := range arc {
+				names = append(names, doc.Variables[arc[(first+k)%len(arc)]].Name)
 			}
 			names = append(names, names[0])
 			return names
