@@ -197,7 +197,10 @@ func TestValidationCatalogue(t *testing.T) {
 		{"two distributions", y(func(v *model.Variable) { v.Gate = &model.Gate{Type: model.GateAnyOf} }), model.Limits{}, []string{"more than one distribution", "table, gate"}, false},
 		{"bad gate", y(func(v *model.Variable) { v.Table = nil; v.Gate = &model.Gate{Type: "xor"} }), model.Limits{}, []string{`unknown gate type "xor"`}, false},
 		{"bad k", y(func(v *model.Variable) { v.Table = nil; v.Gate = &model.Gate{Type: model.GateKOfN, K: 3} }), model.Limits{}, []string{"1 <= k <= 1", "k = 3"}, false},
-		{"noisy-or link missing", y(func(v *model.Variable) { v.Table = nil; v.NoisyOR = &model.NoisyOR{Leak: 0.1, Links: map[string]float64{}} }), model.Limits{}, []string{`no link given for parent "x"`}, false},
+		{"noisy-or link missing", y(func(v *model.Variable) {
+			v.Table = nil
+			v.NoisyOR = &model.NoisyOR{Leak: 0.1, Links: map[string]float64{}}
+		}), model.Limits{}, []string{`no link given for parent "x"`}, false},
 		{"noisy-or link foreign", y(func(v *model.Variable) {
 			v.Table = nil
 			v.NoisyOR = &model.NoisyOR{Leak: 0.1, Links: map[string]float64{"x": 0.5, "q": 0.1}}
