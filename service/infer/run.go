@@ -1,0 +1,246 @@
+package infer
+
+import (
+	"context"
+	crand "crypto/rand"
+	"encoding/binary"
+	"errors"
+	"fmt"
+	"math"
+	"sync"
+	"time"
+
+	"github.com/beliefd/beliefd/service/exact"
+	"github.com/beliefd/beliefd/service/model"
+	"github.com/beliefd/beliefd/service/sampling"
+	"github.com/beliefd/beliefd/service/sampling/gibbs"
+)
+
+// Options configure a Runner. Zero values take the documented defaults.
+type Options struct {
+	// ExactMaxEntries bounds the junction-tree size (total table entries)
+	// that exact inference accepts; 0 means exact.DefaultMaxEntries.
+	ExactMaxEntries int
+	// Workers is the number of sampling goroutines; 0 means GOMAXPROCS.
+	Workers int
+	// ProgressEvery is the interval between partial results; 0 means 250ms.
+	ProgressEvery time.Duration
+	// EngineCache is how many compiled exact engines are kept; 0 means 32.
+	EngineCache int
+}
+
+// Runner answers queries. It is safe for concurrent use and keeps compiled
+// exact-inference engines of recently used models.
+type Runner struct {
+	opt     Options
+	mu      sync.Mutex
+	engines map[string]*exact.Engine
+}
+
+// NewRunner returns a Runner with the given options.
+func NewRunner(opt Options) *Runner {
+	if opt.EngineCache <= 0 {
+		opt.EngineCache = 32
+	}
+	if opt.ProgressEvery <= 0 {
+		opt.ProgressEvery = 250 * time.Millisecond
+	}
+	return &Runner{opt: opt, engines: map[string]*exact.Engine{}}
+}
+
+// engine returns the compiled exact engine of net, or the reason it cannot
+// be used (a *exact.TooCostlyError).
+func (r *Runner) engine(net *model.Network) (*exact.Engine, error) {
+	key := net.Hash
+	r.mu.Lock()
+	eng, ok := r.engines[key]
+	r.mu.Unlock()
+	if ok {
+		return eng, nil
+	}
+	eng, err := exact.Compile(net, exact.Options{MaxEntries: r.opt.ExactMaxEntries})
+	if err != nil {
+		return nil, err
+	}
+	r.mu.Lock()
+	if len(r.engines) >= r.opt.EngineCache {
+		for k := range r.engines { // evict one at random
+			delete(r.engines, k)
+			break
+		}
+	}
+	r.engines[key] = eng
+	r.mu.Unlock()
+	return eng, nil
+}
+
+// choose resolves "auto" and returns the method with the reason it was picked.
+func (r *Runner) choose(net *model.Network, method string) (string, string, *exact.Engine, error) {
+	switch method {
+	case MethodExact:
+		eng, err := r.engine(net)
+		if err != nil {
+			return "", "", nil, err
+		}
+		return MethodExact, "requested", eng, nil
+	case MethodAuto, "":
+		eng, err := r.engine(net)
+		if err == nil {
+			c := eng.Cost()
+			return MethodExact, fmt.Sprintf("auto: exact inference fits (junction tree of %d table entries, largest clique %d)", c.TotalEntries, c.LargestClique), eng, nil
+		}
+		var tc *exact.TooCostlyError
+		if errors.As(err, &tc) {
+			return MethodLikelihoodWeighting, fmt.Sprintf("auto: exact inference would need about %.3g table entries (limit %d); sampling instead", float64(tc.Estimate.TotalEntries), tc.Limit), nil, nil
+		}
+		return "", "", nil, err
+	}
+	return method, "requested", nil, nil
+}
+
+// Run answers q on net. progress, when not nil, receives partial results
+// while a sampler runs. Cancelling ctx ends a sampler early with its
+// partial result and stop reason "cancelled".
+func (r *Runner) Run(ctx context.Context, net *model.Network, q *Query, progress func(*Result)) (*Result, error) {
+	if err := q.Validate(); err != nil {
+		return nil, err
+	}
+	stop, err := q.Stop.Sampling()
+	if err != nil {
+		return nil, err
+	}
+	ev, err := net.ResolveEvidence(q.Evidence, q.SoftEvidence)
+	if err != nil {
+		return nil, err
+	}
+	targets, err := net.ResolveTargets(q.Targets, ev)
+	if err != nil {
+		return nil, err
+	}
+	var seed uint64
+	if q.Seed != nil {
+		seed = *q.Seed
+	} else {
+		var b [8]byte
+		_, _ = crand.Read(b[:])
+		seed = binary.LittleEndian.Uint64(b[:]) >> 11 // stays exact in JSON numbers
+	}
+	method, reason, eng, err := r.choose(net, q.Method)
+	if err != nil {
+		return nil, err
+	}
+	start := time.Now()
+	res := newResult(net, targets)
+	res.Method, res.MethodReason, res.Seed, res.Confidence = method, reason, seed, stop.Confidence
+
+	if method == MethodExact {
+		post, err := eng.Posterior(ev, targets)
+		if err != nil {
+			return nil, err
+		}
+		m := make([][]sampling.Interval, len(targets))
+		for i := range targets {
+			m[i] = make([]sampling.Interval, len(post.Marginals[i]))
+			for s, p := range post.Marginals[i] {
+				m[i][s] = sampling.Interval{P: p, Lo: p, Hi: p}
+			}
+		}
+		res.setMarginals(net, targets, m)
+		if !ev.Empty() {
+			p := math.Exp(post.LogEvidence)
+			res.EvidenceProbability = &EvidenceProbability{P: p, Lo: p, Hi: p, Log10: finitePtr(post.LogEvidence / math.Ln10)}
+		}
+		res.StopReason = sampling.ReasonExact
+	} else {
+		var partial func(*sampling.Estimate)
+		if progress != nil {
+			partial = func(e *sampling.Estimate) {
+				pr := newResult(net, targets)
+				pr.Method, pr.MethodReason, pr.Seed, pr.Confidence = method, reason, seed, stop.Confidence
+				pr.fill(net, targets, e)
+				progress(pr)
+			}
+		}
+		var est *sampling.Estimate
+		switch method {
+		case MethodGibbs:
+			est, err = gibbs.Run(ctx, net, ev, targets, gibbs.Options{Seed: seed, Stop: stop, Workers: r.opt.Workers, Progress: partial, ProgressEvery: r.opt.ProgressEvery})
+		default:
+			est, err = sampling.Run(ctx, net, ev, targets, sampling.Options{Method: method, Seed: seed, Stop: stop, Workers: r.opt.Workers, Progress: partial, ProgressEvery: r.opt.ProgressEvery})
+		}
+		if err != nil {
+			return nil, err
+		}
+		res.fill(net, targets, est)
+	}
+	if q.MPE {
+		if err := r.addMPE(net, ev, res, eng); err != nil {
+			return nil, err
+		}
+	}
+	res.ElapsedSeconds = time.Since(start).Seconds()
+	return res, nil
+}
+
+func (r *Runner) addMPE(net *model.Network, ev *model.Evidence, res *Result, eng *exact.Engine) error {
+	if eng == nil {
+		var err error
+		if eng, err = r.engine(net); err != nil {
+			return fmt.Errorf("mpe needs exact inference: %w", err)
+		}
+	}
+	mpe, err := eng.MPE(ev)
+	if err != nil {
+		return err
+	}
+	out := &MPE{Assignment: make(map[string]string, len(net.Vars))}
+	for v, s := range mpe.Assignment {
+		out.Assignment[net.Vars[v].Name] = net.Vars[v].States[s]
+	}
+	out.Joint = math.Exp(mpe.LogProb)
+	out.Log10Joint = finitePtr(mpe.LogProb / math.Ln10)
+	out.P = out.Joint
+	if !ev.Empty() {
+		post, err := eng.Posterior(ev, nil)
+		if err != nil {
+			return err
+		}
+		out.P = math.Exp(mpe.LogProb - post.LogEvidence)
+	}
+	res.MPE = out
+	return nil
+}
+
+// fill copies a sampling estimate into the result.
+func (res *Result) fill(net *model.Network, targets []int, e *sampling.Estimate) {
+	res.Samples = e.Samples
+	res.EffectiveSamples = e.EffectiveSamples
+	res.StopReason = e.StopReason
+	res.ElapsedSeconds = e.Elapsed.Seconds()
+	res.setMarginals(net, targets, e.Marginals)
+	if e.Evidence != nil {
+		res.EvidenceProbability = &EvidenceProbability{P: e.Evidence.P, Lo: e.Evidence.Lo, Hi: e.Evidence.Hi, Log10: finitePtr(e.Log10Evidence)}
+	}
+	d := &Diagnostics{}
+	switch e.Method {
+	case MethodRejection:
+		d.AcceptanceRate = finitePtr(e.AcceptanceRate)
+	case MethodLikelihoodWeighting:
+		d.MaxWeightShare = finitePtr(e.MaxWeightShare)
+	case MethodGibbs:
+		d.RHat = map[string]float64{}
+		d.ESS = map[string]float64{}
+		for i, v := range targets {
+			if i < len(e.RHat) && !math.IsNaN(e.RHat[i]) && !math.IsInf(e.RHat[i], 0) {
+				d.RHat[net.Vars[v].Name] = e.RHat[i]
+			}
+			if i < len(e.ESS) && !math.IsNaN(e.ESS[i]) && !math.IsInf(e.ESS[i], 0) {
+				d.ESS[net.Vars[v].Name] = e.ESS[i]
+			}
+		}
+	}
+	if d.AcceptanceRate != nil || d.MaxWeightShare != nil || len(d.RHat) > 0 || len(d.ESS) > 0 {
+		res.Diagnostics = d
+	}
+	res.Warnings = append(res.Warnings[:0], e.Warnings...)
+}
