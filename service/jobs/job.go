@@ -79,13 +79,16 @@ type Job struct {
 	Merged       *sampling.Stats `json:"merged,omitempty"`
 	MergedBlocks int64           `json:"merged_blocks"`
 	// Result is the latest result document: partial while running.
-	Result         *infer.Result `json:"result,omitempty"`
-	Error          string        `json:"error,omitempty"`
-	IdempotencyKey string        `json:"idempotency_key,omitempty"`
-	CreatedAt      time.Time     `json:"created_at"`
-	StartedAt      time.Time     `json:"started_at,omitzero"`
-	UpdatedAt      time.Time     `json:"updated_at"`
-	FinishedAt     time.Time     `json:"finished_at,omitzero"`
+	Result *infer.Result `json:"result,omitempty"`
+	// ResultAt is when Result was last written (partial results are
+	// written at most every Config.PartialEvery); zero before the first.
+	ResultAt       time.Time `json:"result_at,omitzero"`
+	Error          string    `json:"error,omitempty"`
+	IdempotencyKey string    `json:"idempotency_key,omitempty"`
+	CreatedAt      time.Time `json:"created_at"`
+	StartedAt      time.Time `json:"started_at,omitzero"`
+	UpdatedAt      time.Time `json:"updated_at"`
+	FinishedAt     time.Time `json:"finished_at,omitzero"`
 	// Deadline is when the job ends at the latest (its stop timeout, or the
 	// service's job deadline); zero for none.
 	Deadline time.Time `json:"deadline,omitzero"`
