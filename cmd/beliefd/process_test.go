@@ -52,7 +52,11 @@ type syncWriter struct {
 	w  io.Writer
 }
 
-func (s syncWriter) Write(p []byte) (int, error) { s.mu.Lock(); defer s.mu.Unlock(); return s.w.Write(p) }
+func (s syncWriter) Write(p []byte) (int, error) {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return s.w.Write(p)
+}
 
 func startProc(t *testing.T, args ...string) *proc {
 	t.Helper()

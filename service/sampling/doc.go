@@ -69,7 +69,7 @@
 //   - Likelihood-weighting marginals: p̂ = Σ w I / Σ w with the delta-method
 //     variance of a ratio estimator, var(p̂) ≈ Σ w²(I − p̂)² / (Σ w)²
 //     (Hesterberg 1995, Technometrics 37:185-194; Owen 2013, Monte Carlo
-//     theory, methods and examples, §9.2), computed from the per-state sums
+//     theory, methods and examples, ch. 9), computed from the per-state sums
 //     as ((1−p̂)² Σ w²I + p̂² (Σw² − Σ w²I)) / (Σ w)² and clipped to [0, 1].
 //     A state never seen (or the only one seen) would get a zero-width
 //     interval; it is widened to the Wilson bound for the effective sample
@@ -81,6 +81,9 @@
 //     (z²/(N+z²))·max possible weight, and a warning.
 //   - Targets with hard evidence are exact (zero-width intervals), and
 //     precision rules ignore them.
+//
+// Weights are plain float64: evidence so unlikely that one sample's weight
+// falls below about 1e-308 underflows to weight 0.
 //
 // Intervals for likelihood weighting rest on the central limit theorem;
 // when the weights are very uneven (effective sample size below 1% of N,
