@@ -88,21 +88,44 @@ func newService(store jobs.Store, cfg *serverConfig, log *slog.Logger) (*jobs.Se
 	return svc, m, reg, nil
 }
 
-func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	cfg, err := parseServerFlags("serve", "serve [flags]", args, stdout, true)
+// process is what serve and worker share: configuration, logger, store and service.
+type process struct {
+	cfg     *serverConfig
+	log     *slog.Logger
+	store   jobs.Store
+	backend string
+	svc     *jobs.Service
+	metrics *metrics.Metrics
+	reg     *prometheus.Registry
+}
+
+// startProcess parses the settings, opens the store and builds the service;
+// the caller closes p.store.
+func startProcess(ctx context.Context, name, synopsis string, args []string, stdout io.Writer, api bool) (*process, error) {
+	cfg, err := parseServerFlags(name, synopsis, args, stdout, api)
 	if err != nil {
-		return err
+		return nil, err
 	}
 	log, _ := cfg.logger(os.Stderr)
 	store, backend, err := openStore(ctx, cfg, log)
 	if err != nil {
-		return err
+		return nil, err
 	}
-	defer store.Close()
 	svc, m, reg, err := newService(store, cfg, log)
+	if err != nil {
+		store.Close()
+		return nil, err
+	}
+	return &process{cfg: cfg, log: log, store: store, backend: backend, svc: svc, metrics: m, reg: reg}, nil
+}
+
+func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	p, err := startProcess(ctx, "serve", "serve [flags]", args, stdout, true)
 	if err != nil {
 		return err
 	}
+	defer p.store.Close()
+	cfg, log, store, backend, svc, m, reg := p.cfg, p.log, p.store, p.backend, p.svc, p.metrics, p.reg
 	var preloaded []string
 	if cfg.Preload {
 		if preloaded, err = preload(ctx, svc); err != nil {
@@ -244,20 +267,12 @@ func displayAddr(a net.Addr) string {
 }
 
 func cmdWorker(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	cfg, err := parseServerFlags("worker", "worker --redis URL [flags]", args, stdout, false)
+	p, err := startProcess(ctx, "worker", "worker --redis URL [flags]", args, stdout, false)
 	if err != nil {
 		return err
 	}
-	log, _ := cfg.logger(os.Stderr)
-	store, backend, err := openStore(ctx, cfg, log)
-	if err != nil {
-		return err
-	}
-	defer store.Close()
-	svc, _, reg, err := newService(store, cfg, log)
-	if err != nil {
-		return err
-	}
+	defer p.store.Close()
+	cfg, log, store, backend, svc, reg := p.cfg, p.log, p.store, p.backend, p.svc, p.reg
 	var ms *http.Server
 	if cfg.MetricsAddr != "" {
 		ln, err := net.Listen("tcp", cfg.MetricsAddr)
