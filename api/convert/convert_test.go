@@ -171,6 +171,12 @@ func TestQueryRoundTrip(t *testing.T) {
 			Priority:       "high",
 			IdempotencyKey: "k-1",
 		},
+		"adaptive": {
+			Model:    "m",
+			Method:   infer.MethodAdaptive,
+			Adaptive: &infer.AdaptiveOptions{RareTargets: []string{"top"}, RareThreshold: 1e-4, EpsDelta: &infer.EpsDeltaRule{Epsilon: 0.1, Delta: 0.05}},
+		},
+		"adaptive defaults": {Model: "m", Adaptive: &infer.AdaptiveOptions{}},
 	}
 	for name, q := range cases {
 		t.Run(name, func(t *testing.T) {
@@ -335,7 +341,9 @@ func TestEveryFieldHandled(t *testing.T) {
 		{reflect.TypeOf(model.NoisyMAX{}), "Leak Links"},
 		{reflect.TypeOf(model.Gate{}), "Type K"},
 		{reflect.TypeOf(model.FailureRate{}), "Lambda MissionTime"},
-		{reflect.TypeOf(infer.Query{}), "Model Evidence SoftEvidence Targets Method MPE Stop Seed Priority IdempotencyKey"},
+		{reflect.TypeOf(infer.Query{}), "Model Evidence SoftEvidence Targets Method MPE Stop Seed Adaptive Priority IdempotencyKey"},
+		{reflect.TypeOf(infer.AdaptiveOptions{}), "RareTargets RareThreshold EpsDelta"},
+		{reflect.TypeOf(infer.EpsDeltaRule{}), "Epsilon Delta"},
 		{reflect.TypeOf(infer.StopRule{}), "MaxSamples Timeout AbsErr RelErr Confidence"},
 		{reflect.TypeOf(infer.Result{}), "Model ModelHash Method MethodReason Seed Samples EffectiveSamples StopReason ElapsedSeconds " +
 			"Confidence EvidenceProbability Marginals MPE Diagnostics Warnings Caution State"},

@@ -34,6 +34,12 @@ func QueryToProto(q *infer.Query) *beliefv1.Query {
 		s := *q.Seed
 		m.Seed = &s
 	}
+	if a := q.Adaptive; a != nil {
+		m.Adaptive = &beliefv1.AdaptiveOptions{RareTargets: nilIfEmpty(a.RareTargets), RareThreshold: a.RareThreshold}
+		if e := a.EpsDelta; e != nil {
+			m.Adaptive.EpsDelta = &beliefv1.EpsDeltaRule{Epsilon: e.Epsilon, Delta: e.Delta}
+		}
+	}
 	return m
 }
 
@@ -70,6 +76,12 @@ func QueryFromProto(m *beliefv1.Query) *infer.Query {
 	if m.Seed != nil {
 		s := m.GetSeed()
 		q.Seed = &s
+	}
+	if a := m.GetAdaptive(); a != nil {
+		q.Adaptive = &infer.AdaptiveOptions{RareTargets: nilIfEmpty(a.GetRareTargets()), RareThreshold: a.GetRareThreshold()}
+		if e := a.GetEpsDelta(); e != nil {
+			q.Adaptive.EpsDelta = &infer.EpsDeltaRule{Epsilon: e.GetEpsilon(), Delta: e.GetDelta()}
+		}
 	}
 	return q
 }

@@ -51,7 +51,7 @@ const Other = "other"
 
 // Label value sets.
 var (
-	methods  = []string{infer.MethodExact, infer.MethodForward, infer.MethodRejection, infer.MethodLikelihoodWeighting, infer.MethodGibbs}
+	methods  = []string{infer.MethodExact, infer.MethodForward, infer.MethodRejection, infer.MethodLikelihoodWeighting, infer.MethodGibbs, infer.MethodAdaptive}
 	states   = []string{string(jobs.StateQueued), string(jobs.StateRunning), string(jobs.StateSucceeded), string(jobs.StateFailed), string(jobs.StateCancelled)}
 	outcomes = []string{"committed", "lost_lease", "cancelled", "error"}
 )

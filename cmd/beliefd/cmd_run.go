@@ -29,7 +29,7 @@ type queryFlags struct {
 
 func bindQueryFlags(fs *flag.FlagSet) *queryFlags {
 	qf := &queryFlags{
-		method:     fs.String("method", "auto", "auto, exact, forward, rejection, likelihood-weighting or gibbs"),
+		method:     fs.String("method", "auto", "auto, exact, forward, rejection, likelihood-weighting, gibbs or adaptive-importance"),
 		samples:    fs.Int64("samples", 0, "stop after this many samples (default 1,000,000, or 10^9 when a precision or timeout rule is given)"),
 		timeout:    fs.Duration("timeout", 0, "stop sampling after this long, e.g. 30s"),
 		absErr:     fs.Float64("abs-err", 0, "stop when every interval's half-width is at most this"),

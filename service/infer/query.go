@@ -6,6 +6,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"math"
 	"strings"
 	"time"
 
@@ -20,10 +21,11 @@ const (
 	MethodRejection           = "rejection"
 	MethodLikelihoodWeighting = "likelihood-weighting"
 	MethodGibbs               = "gibbs"
+	MethodAdaptive            = "adaptive-importance"
 )
 
 // Methods lists the method names a query may ask for.
-var Methods = []string{MethodAuto, MethodExact, MethodForward, MethodRejection, MethodLikelihoodWeighting, MethodGibbs}
+var Methods = []string{MethodAuto, MethodExact, MethodForward, MethodRejection, MethodLikelihoodWeighting, MethodGibbs, MethodAdaptive}
 
 // ErrBadQuery is wrapped by errors about a query that cannot be run as written.
 var ErrBadQuery = errors.New("bad query")
@@ -38,8 +40,49 @@ type Query struct {
 	MPE            bool                 `json:"mpe,omitempty"`
 	Stop           StopRule             `json:"stop,omitempty"`
 	Seed           *uint64              `json:"seed,omitempty"`
+	Adaptive       *AdaptiveOptions     `json:"adaptive,omitempty"`
 	Priority       string               `json:"priority,omitempty"`
 	IdempotencyKey string               `json:"idempotency_key,omitempty"`
+}
+
+// AdaptiveOptions are the options of adaptive importance sampling (and of
+// method "auto" when it picks it).
+type AdaptiveOptions struct {
+	// RareTargets are targets whose unlikely states each get their own
+	// importance function, estimated as P(state, evidence)/P(evidence).
+	RareTargets []string `json:"rare_targets,omitempty"`
+	// RareThreshold: target states whose pilot estimate is below it get
+	// their own importance function too (default 1e-3; negative: none).
+	RareThreshold float64 `json:"rare_threshold,omitempty"`
+	// EpsDelta adds the (ε, δ) stopping rule on P(evidence) and on the
+	// rare states' joint probabilities.
+	EpsDelta *EpsDeltaRule `json:"eps_delta,omitempty"`
+}
+
+// EpsDeltaRule asks for estimates within a factor 1 ± Epsilon of the truth
+// with probability at least 1 - Delta.
+type EpsDeltaRule struct {
+	Epsilon float64 `json:"epsilon"`
+	Delta   float64 `json:"delta"`
+}
+
+// validate checks what can be checked without the model.
+func (a *AdaptiveOptions) validate() error {
+	if a == nil {
+		return nil
+	}
+	if math.IsNaN(a.RareThreshold) || a.RareThreshold >= 1 {
+		return fmt.Errorf("%w: adaptive.rare_threshold = %g must be below 1", ErrBadQuery, a.RareThreshold)
+	}
+	if e := a.EpsDelta; e != nil {
+		if math.IsNaN(e.Epsilon) || e.Epsilon <= 0 || e.Epsilon >= 1 {
+			return fmt.Errorf("%w: adaptive.eps_delta.epsilon = %g must be in (0, 1)", ErrBadQuery, e.Epsilon)
+		}
+		if math.IsNaN(e.Delta) || e.Delta <= 0 || e.Delta >= 1 {
+			return fmt.Errorf("%w: adaptive.eps_delta.delta = %g must be in (0, 1)", ErrBadQuery, e.Delta)
+		}
+	}
+	return nil
 }
 
 // StopRule is the stopping rule as written in a query document. Timeout is
@@ -89,6 +132,12 @@ func (q *Query) Validate() error {
 	if _, err := q.Stop.Sampling(); err != nil {
 		return err
 	}
+	if err := q.Adaptive.validate(); err != nil {
+		return err
+	}
+	if q.Adaptive != nil && q.Method != MethodAdaptive && q.Method != MethodAuto {
+		return fmt.Errorf("%w: adaptive options given for method %q; they apply to %q (or \"auto\")", ErrBadQuery, q.Method, MethodAdaptive)
+	}
 	switch q.Priority {
 	case "", "normal", "high", "low":
 	default:
@@ -113,6 +162,12 @@ func DecodeQuery(r io.Reader, maxBytes int64) (*Query, error) {
 	dec.DisallowUnknownFields()
 	var q Query
 	if err := dec.Decode(&q); err != nil {
+		switch {
+		case errors.Is(err, io.EOF):
+			return nil, fmt.Errorf("%w: empty query document", ErrBadQuery)
+		case errors.Is(err, io.ErrUnexpectedEOF):
+			return nil, fmt.Errorf("%w: the query document ends early (unbalanced braces or brackets?)", ErrBadQuery)
+		}
 		return nil, fmt.Errorf("%w: %v", ErrBadQuery, err)
 	}
 	if dec.More() {

@@ -13,6 +13,7 @@ import (
 	"github.com/beliefd/beliefd/service/exact"
 	"github.com/beliefd/beliefd/service/model"
 	"github.com/beliefd/beliefd/service/sampling"
+	"github.com/beliefd/beliefd/service/sampling/adaptive"
 	"github.com/beliefd/beliefd/service/sampling/gibbs"
 )
 
@@ -125,11 +126,11 @@ func (r *Runner) Run(ctx context.Context, net *model.Network, q *Query, progress
 		_, _ = crand.Read(b[:])
 		seed = binary.LittleEndian.Uint64(b[:]) >> 11 // stays exact in JSON numbers
 	}
-	method, reason, eng, err := r.choose(net, q.Method)
+	start := time.Now()
+	method, reason, eng, err := r.chooseFor(ctx, net, q, ev, targets, seed)
 	if err != nil {
 		return nil, err
 	}
-	start := time.Now()
 	res := newResult(net, targets)
 	res.Method, res.MethodReason, res.Seed, res.Confidence = method, reason, seed, stop.Confidence
 
@@ -165,6 +166,19 @@ func (r *Runner) Run(ctx context.Context, net *model.Network, q *Query, progress
 		switch method {
 		case MethodGibbs:
 			est, err = gibbs.Run(ctx, net, ev, targets, gibbs.Options{Seed: seed, Stop: stop, Workers: r.opt.Workers, Progress: partial, ProgressEvery: r.opt.ProgressEvery})
+		case MethodAdaptive:
+			var ao adaptive.Options
+			if ao, err = AdaptiveOptionsFor(net, q, ev, targets); err != nil {
+				return nil, err
+			}
+			ao.Seed, ao.Stop, ao.Workers, ao.ProgressEvery = seed, stop, r.opt.Workers, r.opt.ProgressEvery
+			if partial != nil {
+				ao.Progress = func(a *adaptive.Result) { partial(a.Estimate) }
+			}
+			var ar *adaptive.Result
+			if ar, err = adaptive.Run(ctx, net, ev, targets, ao); err == nil {
+				est = ar.Estimate
+			}
 		default:
 			est, err = sampling.Run(ctx, net, ev, targets, sampling.Options{Method: method, Seed: seed, Stop: stop, Workers: r.opt.Workers, Progress: partial, ProgressEvery: r.opt.ProgressEvery})
 		}
@@ -225,7 +239,7 @@ func (res *Result) fill(net *model.Network, targets []int, e *sampling.Estimate)
 	switch e.Method {
 	case MethodRejection:
 		d.AcceptanceRate = finitePtr(e.AcceptanceRate)
-	case MethodLikelihoodWeighting:
+	case MethodLikelihoodWeighting, MethodAdaptive:
 		d.MaxWeightShare = finitePtr(e.MaxWeightShare)
 	case MethodGibbs:
 		d.RHat = map[string]float64{}
@@ -243,4 +257,108 @@ func (res *Result) fill(net *model.Network, targets []int, e *sampling.Estimate)
 		res.Diagnostics = d
 	}
 	res.Warnings = append(res.Warnings[:0], e.Warnings...)
+}
+
+// Thresholds of method "auto" for adaptive importance sampling, applied to
+// a pilot run of likelihood weighting (see ChooseQueryMethod).
+const (
+	autoPilotSamples   = 20_000
+	autoEvidenceBelow  = 1e-4
+	autoESSRatioBelow  = 0.01
+	autoRareStateBelow = adaptive.DefaultRareThreshold
+)
+
+// ChooseQueryMethod resolves a query's method as Run does: "auto" (or "")
+// picks exact inference when its junction tree fits the limit; otherwise
+// it draws a pilot of 20,000 likelihood-weighting samples with the query's
+// seed and picks adaptive importance sampling when the evidence is
+// unlikely (estimated P(evidence) below 1e-4, or effective samples below
+// 1% of the pilot), when the query names rare targets, or when a target
+// it names has a state estimated below 1e-3; likelihood weighting
+// otherwise. The reason carries the pilot's numbers.
+func (r *Runner) ChooseQueryMethod(ctx context.Context, net *model.Network, q *Query, ev *model.Evidence, targets []int, seed uint64) (method, reason string, err error) {
+	method, reason, _, err = r.chooseFor(ctx, net, q, ev, targets, seed)
+	return method, reason, err
+}
+
+func (r *Runner) chooseFor(ctx context.Context, net *model.Network, q *Query, ev *model.Evidence, targets []int, seed uint64) (string, string, *exact.Engine, error) {
+	method, reason, eng, err := r.choose(net, q.Method)
+	if err != nil || method != MethodLikelihoodWeighting || (q.Method != MethodAuto && q.Method != "") {
+		return method, reason, eng, err
+	}
+	if q.Adaptive != nil && len(q.Adaptive.RareTargets) > 0 {
+		return MethodAdaptive, reason + "; the query names rare targets, so adaptive importance sampling", nil, nil
+	}
+	pilot, err := sampling.Run(ctx, net, ev, targets, sampling.Options{Method: MethodLikelihoodWeighting, Seed: seed,
+		Stop: sampling.Stop{MaxSamples: autoPilotSamples}, Workers: 1, BlockSize: 4096})
+	if err != nil {
+		return "", "", nil, err
+	}
+	if ctx.Err() != nil {
+		return "", "", nil, ctx.Err()
+	}
+	if pilot.Evidence != nil {
+		pe := pilot.Evidence
+		switch {
+		case pe.P < autoEvidenceBelow:
+			return MethodAdaptive, fmt.Sprintf("%s; a pilot of %d likelihood-weighting samples puts P(evidence) at %.3g [%.3g, %.3g] (effective samples %.4g): unlikely evidence, so adaptive importance sampling",
+				reason, pilot.Samples, pe.P, pe.Lo, pe.Hi, pilot.EffectiveSamples), nil, nil
+		case pilot.EffectiveSamples < autoESSRatioBelow*float64(pilot.Samples):
+			return MethodAdaptive, fmt.Sprintf("%s; a pilot of %d likelihood-weighting samples has %.4g effective samples (P(evidence) %.3g [%.3g, %.3g]): the weights collapse, so adaptive importance sampling",
+				reason, pilot.Samples, pilot.EffectiveSamples, pe.P, pe.Lo, pe.Hi), nil, nil
+		}
+	}
+	if len(q.Targets) > 0 {
+		for i, v := range targets {
+			if ev.Hard[v] >= 0 {
+				continue
+			}
+			for st, iv := range pilot.Marginals[i] {
+				if iv.P < autoRareStateBelow {
+					return MethodAdaptive, fmt.Sprintf("%s; a pilot of %d likelihood-weighting samples puts %s=%s at %.3g [%.3g, %.3g]: a rare target state, so adaptive importance sampling",
+						reason, pilot.Samples, net.Vars[v].Name, net.Vars[v].States[st], iv.P, iv.Lo, iv.Hi), nil, nil
+				}
+			}
+		}
+	}
+	pe := "no evidence"
+	if pilot.Evidence != nil {
+		pe = fmt.Sprintf("P(evidence) %.3g", pilot.Evidence.P)
+	}
+	return MethodLikelihoodWeighting, fmt.Sprintf("%s; a pilot of %d likelihood-weighting samples (%s, %.4g effective samples) shows neither unlikely evidence nor rare target states",
+		reason, pilot.Samples, pe, pilot.EffectiveSamples), nil, nil
+}
+
+// AdaptiveOptionsFor resolves the adaptive options of q against net: rare
+// target names become indices (each must be a target), and the threshold
+// and (ε, δ) rule are copied. Seed, stopping rule and workers are left to
+// the caller.
+func AdaptiveOptionsFor(net *model.Network, q *Query, ev *model.Evidence, targets []int) (adaptive.Options, error) {
+	var o adaptive.Options
+	a := q.Adaptive
+	if a == nil {
+		return o, nil
+	}
+	for _, name := range a.RareTargets {
+		v, ok := net.Index(name)
+		if !ok {
+			return o, fmt.Errorf("%w: adaptive.rare_targets: unknown variable %q", model.ErrBadEvidence, name)
+		}
+		in := false
+		for _, t := range targets {
+			in = in || t == v
+		}
+		if !in {
+			return o, fmt.Errorf("%w: adaptive.rare_targets: %q is not among the query's targets", model.ErrBadEvidence, name)
+		}
+		if ev != nil && ev.Hard[v] >= 0 {
+			return o, fmt.Errorf("%w: adaptive.rare_targets: %q has hard evidence, so it is not rare", model.ErrBadEvidence, name)
+		}
+		o.RareTargets = append(o.RareTargets, v)
+	}
+	o.RareThreshold = a.RareThreshold
+	if e := a.EpsDelta; e != nil {
+		o.EpsDelta = &adaptive.EpsDelta{Epsilon: e.Epsilon, Delta: e.Delta}
+	}
+	return o, nil
 }

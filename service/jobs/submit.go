@@ -29,11 +29,12 @@ type plan struct {
 }
 
 // Submit validates q against its model now (unknown variables or states,
-// a bad stopping rule, the method: "auto" becomes exact inference or
-// likelihood weighting, Gibbs reducibility), draws a seed when q has none,
-// plans the work (blocks of sampling.DefaultBlockSize samples for forward,
-// rejection and likelihood weighting; one unit for exact inference and
-// Gibbs sampling) and queues the job. A query whose idempotency key names a
+// a bad stopping rule, the method: "auto" becomes exact inference,
+// adaptive importance sampling or likelihood weighting, Gibbs
+// reducibility), draws a seed when q has none, plans the work (blocks of
+// sampling.DefaultBlockSize samples for forward, rejection and likelihood
+// weighting; one unit for exact inference, Gibbs sampling and adaptive
+// importance sampling) and queues the job. A query whose idempotency key names a
 // job still kept returns that job with created == false. When the queue
 // holds Config.MaxUnfinished unfinished jobs it fails with ErrQueueFull.
 func (s *Service) Submit(ctx context.Context, q *infer.Query) (*Job, bool, error) {
@@ -90,16 +91,16 @@ func (s *Service) plan(ctx context.Context, q *infer.Query) (*Job, *plan, error)
 	if err != nil {
 		return nil, nil, err
 	}
-	method, reason, err := s.runner.ChooseMethod(net, qc.Method)
-	if err != nil {
-		return nil, nil, err
-	}
 	var seed uint64
 	if qc.Seed != nil {
 		seed = *qc.Seed
 	} else {
 		seed = drawSeed()
 		qc.Seed = &seed
+	}
+	method, reason, err := s.runner.ChooseQueryMethod(ctx, net, qc, ev, targets, seed)
+	if err != nil {
+		return nil, nil, err
 	}
 	p := &plan{net: net, ev: ev, targets: targets}
 	now := s.now()
@@ -110,6 +111,11 @@ func (s *Service) plan(ctx context.Context, q *infer.Query) (*Job, *plan, error)
 	}
 	switch method {
 	case infer.MethodExact:
+	case infer.MethodAdaptive:
+		// One unit, like Gibbs sampling: its learning phase runs first.
+		if _, err := infer.AdaptiveOptionsFor(net, qc, ev, targets); err != nil {
+			return nil, nil, err
+		}
 	case infer.MethodGibbs:
 		if err := checkGibbs(net, ev, targets, seed, stop); err != nil {
 			return nil, nil, err
@@ -157,6 +163,15 @@ func cloneQuery(q *infer.Query) *infer.Query {
 		}
 	}
 	c.Targets = slices.Clone(q.Targets)
+	if q.Adaptive != nil {
+		a := *q.Adaptive
+		a.RareTargets = slices.Clone(q.Adaptive.RareTargets)
+		if q.Adaptive.EpsDelta != nil {
+			e := *q.Adaptive.EpsDelta
+			a.EpsDelta = &e
+		}
+		c.Adaptive = &a
+	}
 	if q.Seed != nil {
 		seed := *q.Seed
 		c.Seed = &seed

@@ -50,7 +50,7 @@ func (s *Service) runUnit(ctx context.Context, j *Job, worker string) error {
 	q.Method, q.Seed, q.Priority, q.IdempotencyKey = j.Method, &seed, "", ""
 	u := s.startUnit(ctx, j, 0, worker)
 	var progress func(*infer.Result)
-	if j.Method == infer.MethodGibbs {
+	if j.Method == infer.MethodGibbs || j.Method == infer.MethodAdaptive {
 		progress = u.offer
 	}
 	out := make(chan unitResult, 1)
@@ -76,8 +76,9 @@ func (s *Service) runUnit(ctx context.Context, j *Job, worker string) error {
 	case r = <-out:
 		got = true
 	case <-u.ctx.Done():
-		if j.Method == infer.MethodGibbs {
-			// Gibbs sampling ends promptly with its partial estimate.
+		if j.Method == infer.MethodGibbs || j.Method == infer.MethodAdaptive {
+			// Gibbs and adaptive importance sampling end promptly with
+			// their partial estimates.
 			r, got = <-out, true
 		}
 	}
@@ -113,7 +114,7 @@ func (s *Service) deadlineUnit(ctx context.Context, j *Job, worker string, began
 		return err
 	}
 	var o unitOutcome
-	if j.Method == infer.MethodGibbs && cur.Result != nil {
+	if (j.Method == infer.MethodGibbs || j.Method == infer.MethodAdaptive) && cur.Result != nil {
 		r := *cur.Result
 		r.StopReason = sampling.ReasonTimeout
 		o.Result = &r

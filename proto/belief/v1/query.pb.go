@@ -97,7 +97,7 @@ type Query struct {
 	// variable without hard evidence.
 	Targets []string `protobuf:"bytes,4,rep,name=targets,proto3" json:"targets,omitempty"`
 	// "auto" (or empty), "exact", "forward", "rejection",
-	// "likelihood-weighting" or "gibbs".
+	// "likelihood-weighting", "gibbs" or "adaptive-importance".
 	Method string `protobuf:"bytes,5,opt,name=method,proto3" json:"method,omitempty"`
 	// Also compute the most probable explanation.
 	Mpe  bool      `protobuf:"varint,6,opt,name=mpe,proto3" json:"mpe,omitempty"`
@@ -108,8 +108,10 @@ type Query struct {
 	Priority string `protobuf:"bytes,9,opt,name=priority,proto3" json:"priority,omitempty"`
 	// Submissions with the same key return the same job while it is kept.
 	IdempotencyKey string `protobuf:"bytes,10,opt,name=idempotency_key,json=idempotencyKey,proto3" json:"idempotency_key,omitempty"`
-	unknownFields  protoimpl.UnknownFields
-	sizeCache      protoimpl.SizeCache
+	// Options of adaptive importance sampling (and of "auto" when it picks it).
+	Adaptive      *AdaptiveOptions `protobuf:"bytes,11,opt,name=adaptive,proto3" json:"adaptive,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Query) Reset() {
@@ -212,6 +214,132 @@ func (x *Query) GetIdempotencyKey() string {
 	return ""
 }
 
+func (x *Query) GetAdaptive() *AdaptiveOptions {
+	if x != nil {
+		return x.Adaptive
+	}
+	return nil
+}
+
+// AdaptiveOptions tune adaptive importance sampling.
+type AdaptiveOptions struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Targets whose unlikely states each get their own importance function.
+	RareTargets []string `protobuf:"bytes,1,rep,name=rare_targets,json=rareTargets,proto3" json:"rare_targets,omitempty"`
+	// Target states whose pilot estimate is below this get their own
+	// importance function too; 0 means the default (1e-3), negative none.
+	RareThreshold float64 `protobuf:"fixed64,2,opt,name=rare_threshold,json=rareThreshold,proto3" json:"rare_threshold,omitempty"`
+	// The (epsilon, delta) stopping rule; absent for none.
+	EpsDelta      *EpsDeltaRule `protobuf:"bytes,3,opt,name=eps_delta,json=epsDelta,proto3" json:"eps_delta,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *AdaptiveOptions) Reset() {
+	*x = AdaptiveOptions{}
+	mi := &file_belief_v1_query_proto_msgTypes[1]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *AdaptiveOptions) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*AdaptiveOptions) ProtoMessage() {}
+
+func (x *AdaptiveOptions) ProtoReflect() protoreflect.Message {
+	mi := &file_belief_v1_query_proto_msgTypes[1]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use AdaptiveOptions.ProtoReflect.Descriptor instead.
+func (*AdaptiveOptions) Descriptor() ([]byte, []int) {
+	return file_belief_v1_query_proto_rawDescGZIP(), []int{1}
+}
+
+func (x *AdaptiveOptions) GetRareTargets() []string {
+	if x != nil {
+		return x.RareTargets
+	}
+	return nil
+}
+
+func (x *AdaptiveOptions) GetRareThreshold() float64 {
+	if x != nil {
+		return x.RareThreshold
+	}
+	return 0
+}
+
+func (x *AdaptiveOptions) GetEpsDelta() *EpsDeltaRule {
+	if x != nil {
+		return x.EpsDelta
+	}
+	return nil
+}
+
+// EpsDeltaRule asks for estimates within a factor 1 +- epsilon of the truth
+// with probability at least 1 - delta.
+type EpsDeltaRule struct {
+	state         protoimpl.MessageState `protogen:"open.v1"`
+	Epsilon       float64                `protobuf:"fixed64,1,opt,name=epsilon,proto3" json:"epsilon,omitempty"`
+	Delta         float64                `protobuf:"fixed64,2,opt,name=delta,proto3" json:"delta,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *EpsDeltaRule) Reset() {
+	*x = EpsDeltaRule{}
+	mi := &file_belief_v1_query_proto_msgTypes[2]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *EpsDeltaRule) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*EpsDeltaRule) ProtoMessage() {}
+
+func (x *EpsDeltaRule) ProtoReflect() protoreflect.Message {
+	mi := &file_belief_v1_query_proto_msgTypes[2]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use EpsDeltaRule.ProtoReflect.Descriptor instead.
+func (*EpsDeltaRule) Descriptor() ([]byte, []int) {
+	return file_belief_v1_query_proto_rawDescGZIP(), []int{2}
+}
+
+func (x *EpsDeltaRule) GetEpsilon() float64 {
+	if x != nil {
+		return x.Epsilon
+	}
+	return 0
+}
+
+func (x *EpsDeltaRule) GetDelta() float64 {
+	if x != nil {
+		return x.Delta
+	}
+	return 0
+}
+
 // Likelihood is a likelihood vector over a variable's states.
 type Likelihood struct {
 	state         protoimpl.MessageState `protogen:"open.v1"`
@@ -222,7 +350,7 @@ type Likelihood struct {
 
 func (x *Likelihood) Reset() {
 	*x = Likelihood{}
-	mi := &file_belief_v1_query_proto_msgTypes[1]
+	mi := &file_belief_v1_query_proto_msgTypes[3]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -234,7 +362,7 @@ func (x *Likelihood) String() string {
 func (*Likelihood) ProtoMessage() {}
 
 func (x *Likelihood) ProtoReflect() protoreflect.Message {
-	mi := &file_belief_v1_query_proto_msgTypes[1]
+	mi := &file_belief_v1_query_proto_msgTypes[3]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -247,7 +375,7 @@ func (x *Likelihood) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Likelihood.ProtoReflect.Descriptor instead.
 func (*Likelihood) Descriptor() ([]byte, []int) {
-	return file_belief_v1_query_proto_rawDescGZIP(), []int{1}
+	return file_belief_v1_query_proto_rawDescGZIP(), []int{3}
 }
 
 func (x *Likelihood) GetValues() []float64 {
@@ -275,7 +403,7 @@ type StopRule struct {
 
 func (x *StopRule) Reset() {
 	*x = StopRule{}
-	mi := &file_belief_v1_query_proto_msgTypes[2]
+	mi := &file_belief_v1_query_proto_msgTypes[4]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -287,7 +415,7 @@ func (x *StopRule) String() string {
 func (*StopRule) ProtoMessage() {}
 
 func (x *StopRule) ProtoReflect() protoreflect.Message {
-	mi := &file_belief_v1_query_proto_msgTypes[2]
+	mi := &file_belief_v1_query_proto_msgTypes[4]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -300,7 +428,7 @@ func (x *StopRule) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use StopRule.ProtoReflect.Descriptor instead.
 func (*StopRule) Descriptor() ([]byte, []int) {
-	return file_belief_v1_query_proto_rawDescGZIP(), []int{2}
+	return file_belief_v1_query_proto_rawDescGZIP(), []int{4}
 }
 
 func (x *StopRule) GetMaxSamples() int64 {
@@ -368,7 +496,7 @@ type Result struct {
 
 func (x *Result) Reset() {
 	*x = Result{}
-	mi := &file_belief_v1_query_proto_msgTypes[3]
+	mi := &file_belief_v1_query_proto_msgTypes[5]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -380,7 +508,7 @@ func (x *Result) String() string {
 func (*Result) ProtoMessage() {}
 
 func (x *Result) ProtoReflect() protoreflect.Message {
-	mi := &file_belief_v1_query_proto_msgTypes[3]
+	mi := &file_belief_v1_query_proto_msgTypes[5]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -393,7 +521,7 @@ func (x *Result) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Result.ProtoReflect.Descriptor instead.
 func (*Result) Descriptor() ([]byte, []int) {
-	return file_belief_v1_query_proto_rawDescGZIP(), []int{3}
+	return file_belief_v1_query_proto_rawDescGZIP(), []int{5}
 }
 
 func (x *Result) GetModel() string {
@@ -527,7 +655,7 @@ type Interval struct {
 
 func (x *Interval) Reset() {
 	*x = Interval{}
-	mi := &file_belief_v1_query_proto_msgTypes[4]
+	mi := &file_belief_v1_query_proto_msgTypes[6]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -539,7 +667,7 @@ func (x *Interval) String() string {
 func (*Interval) ProtoMessage() {}
 
 func (x *Interval) ProtoReflect() protoreflect.Message {
-	mi := &file_belief_v1_query_proto_msgTypes[4]
+	mi := &file_belief_v1_query_proto_msgTypes[6]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -552,7 +680,7 @@ func (x *Interval) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Interval.ProtoReflect.Descriptor instead.
 func (*Interval) Descriptor() ([]byte, []int) {
-	return file_belief_v1_query_proto_rawDescGZIP(), []int{4}
+	return file_belief_v1_query_proto_rawDescGZIP(), []int{6}
 }
 
 func (x *Interval) GetP() float64 {
@@ -586,7 +714,7 @@ type StateMarginals struct {
 
 func (x *StateMarginals) Reset() {
 	*x = StateMarginals{}
-	mi := &file_belief_v1_query_proto_msgTypes[5]
+	mi := &file_belief_v1_query_proto_msgTypes[7]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -598,7 +726,7 @@ func (x *StateMarginals) String() string {
 func (*StateMarginals) ProtoMessage() {}
 
 func (x *StateMarginals) ProtoReflect() protoreflect.Message {
-	mi := &file_belief_v1_query_proto_msgTypes[5]
+	mi := &file_belief_v1_query_proto_msgTypes[7]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -611,7 +739,7 @@ func (x *StateMarginals) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use StateMarginals.ProtoReflect.Descriptor instead.
 func (*StateMarginals) Descriptor() ([]byte, []int) {
-	return file_belief_v1_query_proto_rawDescGZIP(), []int{5}
+	return file_belief_v1_query_proto_rawDescGZIP(), []int{7}
 }
 
 func (x *StateMarginals) GetStates() map[string]*Interval {
@@ -635,7 +763,7 @@ type EvidenceProbability struct {
 
 func (x *EvidenceProbability) Reset() {
 	*x = EvidenceProbability{}
-	mi := &file_belief_v1_query_proto_msgTypes[6]
+	mi := &file_belief_v1_query_proto_msgTypes[8]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -647,7 +775,7 @@ func (x *EvidenceProbability) String() string {
 func (*EvidenceProbability) ProtoMessage() {}
 
 func (x *EvidenceProbability) ProtoReflect() protoreflect.Message {
-	mi := &file_belief_v1_query_proto_msgTypes[6]
+	mi := &file_belief_v1_query_proto_msgTypes[8]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -660,7 +788,7 @@ func (x *EvidenceProbability) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use EvidenceProbability.ProtoReflect.Descriptor instead.
 func (*EvidenceProbability) Descriptor() ([]byte, []int) {
-	return file_belief_v1_query_proto_rawDescGZIP(), []int{6}
+	return file_belief_v1_query_proto_rawDescGZIP(), []int{8}
 }
 
 func (x *EvidenceProbability) GetP() float64 {
@@ -707,7 +835,7 @@ type MostProbableExplanation struct {
 
 func (x *MostProbableExplanation) Reset() {
 	*x = MostProbableExplanation{}
-	mi := &file_belief_v1_query_proto_msgTypes[7]
+	mi := &file_belief_v1_query_proto_msgTypes[9]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -719,7 +847,7 @@ func (x *MostProbableExplanation) String() string {
 func (*MostProbableExplanation) ProtoMessage() {}
 
 func (x *MostProbableExplanation) ProtoReflect() protoreflect.Message {
-	mi := &file_belief_v1_query_proto_msgTypes[7]
+	mi := &file_belief_v1_query_proto_msgTypes[9]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -732,7 +860,7 @@ func (x *MostProbableExplanation) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use MostProbableExplanation.ProtoReflect.Descriptor instead.
 func (*MostProbableExplanation) Descriptor() ([]byte, []int) {
-	return file_belief_v1_query_proto_rawDescGZIP(), []int{7}
+	return file_belief_v1_query_proto_rawDescGZIP(), []int{9}
 }
 
 func (x *MostProbableExplanation) GetAssignment() map[string]string {
@@ -779,7 +907,7 @@ type Diagnostics struct {
 
 func (x *Diagnostics) Reset() {
 	*x = Diagnostics{}
-	mi := &file_belief_v1_query_proto_msgTypes[8]
+	mi := &file_belief_v1_query_proto_msgTypes[10]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -791,7 +919,7 @@ func (x *Diagnostics) String() string {
 func (*Diagnostics) ProtoMessage() {}
 
 func (x *Diagnostics) ProtoReflect() protoreflect.Message {
-	mi := &file_belief_v1_query_proto_msgTypes[8]
+	mi := &file_belief_v1_query_proto_msgTypes[10]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -804,7 +932,7 @@ func (x *Diagnostics) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Diagnostics.ProtoReflect.Descriptor instead.
 func (*Diagnostics) Descriptor() ([]byte, []int) {
-	return file_belief_v1_query_proto_rawDescGZIP(), []int{8}
+	return file_belief_v1_query_proto_rawDescGZIP(), []int{10}
 }
 
 func (x *Diagnostics) GetAcceptanceRate() float64 {
@@ -839,7 +967,7 @@ var File_belief_v1_query_proto protoreflect.FileDescriptor
 
 const file_belief_v1_query_proto_rawDesc = "" +
 	"\n" +
-	"\x15belief/v1/query.proto\x12\tbelief.v1\"\x8b\x04\n" +
+	"\x15belief/v1/query.proto\x12\tbelief.v1\"\xc3\x04\n" +
 	"\x05Query\x12\x14\n" +
 	"\x05model\x18\x01 \x01(\tR\x05model\x12:\n" +
 	"\bevidence\x18\x02 \x03(\v2\x1e.belief.v1.Query.EvidenceEntryR\bevidence\x12G\n" +
@@ -851,14 +979,22 @@ const file_belief_v1_query_proto_rawDesc = "" +
 	"\x04seed\x18\b \x01(\x04H\x00R\x04seed\x88\x01\x01\x12\x1a\n" +
 	"\bpriority\x18\t \x01(\tR\bpriority\x12'\n" +
 	"\x0fidempotency_key\x18\n" +
-	" \x01(\tR\x0eidempotencyKey\x1a;\n" +
+	" \x01(\tR\x0eidempotencyKey\x126\n" +
+	"\badaptive\x18\v \x01(\v2\x1a.belief.v1.AdaptiveOptionsR\badaptive\x1a;\n" +
 	"\rEvidenceEntry\x12\x10\n" +
 	"\x03key\x18\x01 \x01(\tR\x03key\x12\x14\n" +
 	"\x05value\x18\x02 \x01(\tR\x05value:\x028\x01\x1aV\n" +
 	"\x11SoftEvidenceEntry\x12\x10\n" +
 	"\x03key\x18\x01 \x01(\tR\x03key\x12+\n" +
 	"\x05value\x18\x02 \x01(\v2\x15.belief.v1.LikelihoodR\x05value:\x028\x01B\a\n" +
-	"\x05_seed\"$\n" +
+	"\x05_seed\"\x91\x01\n" +
+	"\x0fAdaptiveOptions\x12!\n" +
+	"\frare_targets\x18\x01 \x03(\tR\vrareTargets\x12%\n" +
+	"\x0erare_threshold\x18\x02 \x01(\x01R\rrareThreshold\x124\n" +
+	"\teps_delta\x18\x03 \x01(\v2\x17.belief.v1.EpsDeltaRuleR\bepsDelta\">\n" +
+	"\fEpsDeltaRule\x12\x18\n" +
+	"\aepsilon\x18\x01 \x01(\x01R\aepsilon\x12\x14\n" +
+	"\x05delta\x18\x02 \x01(\x01R\x05delta\"$\n" +
 	"\n" +
 	"Likelihood\x12\x16\n" +
 	"\x06values\x18\x01 \x03(\x01R\x06values\"\x97\x01\n" +
@@ -958,47 +1094,51 @@ func file_belief_v1_query_proto_rawDescGZIP() []byte {
 }
 
 var file_belief_v1_query_proto_enumTypes = make([]protoimpl.EnumInfo, 1)
-var file_belief_v1_query_proto_msgTypes = make([]protoimpl.MessageInfo, 16)
+var file_belief_v1_query_proto_msgTypes = make([]protoimpl.MessageInfo, 18)
 var file_belief_v1_query_proto_goTypes = []any{
 	(JobState)(0),                   // 0: belief.v1.JobState
 	(*Query)(nil),                   // 1: belief.v1.Query
-	(*Likelihood)(nil),              // 2: belief.v1.Likelihood
-	(*StopRule)(nil),                // 3: belief.v1.StopRule
-	(*Result)(nil),                  // 4: belief.v1.Result
-	(*Interval)(nil),                // 5: belief.v1.Interval
-	(*StateMarginals)(nil),          // 6: belief.v1.StateMarginals
-	(*EvidenceProbability)(nil),     // 7: belief.v1.EvidenceProbability
-	(*MostProbableExplanation)(nil), // 8: belief.v1.MostProbableExplanation
-	(*Diagnostics)(nil),             // 9: belief.v1.Diagnostics
-	nil,                             // 10: belief.v1.Query.EvidenceEntry
-	nil,                             // 11: belief.v1.Query.SoftEvidenceEntry
-	nil,                             // 12: belief.v1.Result.MarginalsEntry
-	nil,                             // 13: belief.v1.StateMarginals.StatesEntry
-	nil,                             // 14: belief.v1.MostProbableExplanation.AssignmentEntry
-	nil,                             // 15: belief.v1.Diagnostics.RHatEntry
-	nil,                             // 16: belief.v1.Diagnostics.EssEntry
+	(*AdaptiveOptions)(nil),         // 2: belief.v1.AdaptiveOptions
+	(*EpsDeltaRule)(nil),            // 3: belief.v1.EpsDeltaRule
+	(*Likelihood)(nil),              // 4: belief.v1.Likelihood
+	(*StopRule)(nil),                // 5: belief.v1.StopRule
+	(*Result)(nil),                  // 6: belief.v1.Result
+	(*Interval)(nil),                // 7: belief.v1.Interval
+	(*StateMarginals)(nil),          // 8: belief.v1.StateMarginals
+	(*EvidenceProbability)(nil),     // 9: belief.v1.EvidenceProbability
+	(*MostProbableExplanation)(nil), // 10: belief.v1.MostProbableExplanation
+	(*Diagnostics)(nil),             // 11: belief.v1.Diagnostics
+	nil,                             // 12: belief.v1.Query.EvidenceEntry
+	nil,                             // 13: belief.v1.Query.SoftEvidenceEntry
+	nil,                             // 14: belief.v1.Result.MarginalsEntry
+	nil,                             // 15: belief.v1.StateMarginals.StatesEntry
+	nil,                             // 16: belief.v1.MostProbableExplanation.AssignmentEntry
+	nil,                             // 17: belief.v1.Diagnostics.RHatEntry
+	nil,                             // 18: belief.v1.Diagnostics.EssEntry
 }
 var file_belief_v1_query_proto_depIdxs = []int32{
-	10, // 0: belief.v1.Query.evidence:type_name -> belief.v1.Query.EvidenceEntry
-	11, // 1: belief.v1.Query.soft_evidence:type_name -> belief.v1.Query.SoftEvidenceEntry
-	3,  // 2: belief.v1.Query.stop:type_name -> belief.v1.StopRule
-	7,  // 3: belief.v1.Result.evidence_probability:type_name -> belief.v1.EvidenceProbability
-	12, // 4: belief.v1.Result.marginals:type_name -> belief.v1.Result.MarginalsEntry
-	8,  // 5: belief.v1.Result.mpe:type_name -> belief.v1.MostProbableExplanation
-	9,  // 6: belief.v1.Result.diagnostics:type_name -> belief.v1.Diagnostics
-	0,  // 7: belief.v1.Result.state:type_name -> belief.v1.JobState
-	13, // 8: belief.v1.StateMarginals.states:type_name -> belief.v1.StateMarginals.StatesEntry
-	14, // 9: belief.v1.MostProbableExplanation.assignment:type_name -> belief.v1.MostProbableExplanation.AssignmentEntry
-	15, // 10: belief.v1.Diagnostics.r_hat:type_name -> belief.v1.Diagnostics.RHatEntry
-	16, // 11: belief.v1.Diagnostics.ess:type_name -> belief.v1.Diagnostics.EssEntry
-	2,  // 12: belief.v1.Query.SoftEvidenceEntry.value:type_name -> belief.v1.Likelihood
-	6,  // 13: belief.v1.Result.MarginalsEntry.value:type_name -> belief.v1.StateMarginals
-	5,  // 14: belief.v1.StateMarginals.StatesEntry.value:type_name -> belief.v1.Interval
-	15, // [15:15] is the sub-list for method output_type
-	15, // [15:15] is the sub-list for method input_type
-	15, // [15:15] is the sub-list for extension type_name
-	15, // [15:15] is the sub-list for extension extendee
-	0,  // [0:15] is the sub-list for field type_name
+	12, // 0: belief.v1.Query.evidence:type_name -> belief.v1.Query.EvidenceEntry
+	13, // 1: belief.v1.Query.soft_evidence:type_name -> belief.v1.Query.SoftEvidenceEntry
+	5,  // 2: belief.v1.Query.stop:type_name -> belief.v1.StopRule
+	2,  // 3: belief.v1.Query.adaptive:type_name -> belief.v1.AdaptiveOptions
+	3,  // 4: belief.v1.AdaptiveOptions.eps_delta:type_name -> belief.v1.EpsDeltaRule
+	9,  // 5: belief.v1.Result.evidence_probability:type_name -> belief.v1.EvidenceProbability
+	14, // 6: belief.v1.Result.marginals:type_name -> belief.v1.Result.MarginalsEntry
+	10, // 7: belief.v1.Result.mpe:type_name -> belief.v1.MostProbableExplanation
+	11, // 8: belief.v1.Result.diagnostics:type_name -> belief.v1.Diagnostics
+	0,  // 9: belief.v1.Result.state:type_name -> belief.v1.JobState
+	15, // 10: belief.v1.StateMarginals.states:type_name -> belief.v1.StateMarginals.StatesEntry
+	16, // 11: belief.v1.MostProbableExplanation.assignment:type_name -> belief.v1.MostProbableExplanation.AssignmentEntry
+	17, // 12: belief.v1.Diagnostics.r_hat:type_name -> belief.v1.Diagnostics.RHatEntry
+	18, // 13: belief.v1.Diagnostics.ess:type_name -> belief.v1.Diagnostics.EssEntry
+	4,  // 14: belief.v1.Query.SoftEvidenceEntry.value:type_name -> belief.v1.Likelihood
+	8,  // 15: belief.v1.Result.MarginalsEntry.value:type_name -> belief.v1.StateMarginals
+	7,  // 16: belief.v1.StateMarginals.StatesEntry.value:type_name -> belief.v1.Interval
+	17, // [17:17] is the sub-list for method output_type
+	17, // [17:17] is the sub-list for method input_type
+	17, // [17:17] is the sub-list for extension type_name
+	17, // [17:17] is the sub-list for extension extendee
+	0,  // [0:17] is the sub-list for field type_name
 }
 
 func init() { file_belief_v1_query_proto_init() }
@@ -1007,16 +1147,16 @@ func file_belief_v1_query_proto_init() {
 		return
 	}
 	file_belief_v1_query_proto_msgTypes[0].OneofWrappers = []any{}
-	file_belief_v1_query_proto_msgTypes[6].OneofWrappers = []any{}
-	file_belief_v1_query_proto_msgTypes[7].OneofWrappers = []any{}
 	file_belief_v1_query_proto_msgTypes[8].OneofWrappers = []any{}
+	file_belief_v1_query_proto_msgTypes[9].OneofWrappers = []any{}
+	file_belief_v1_query_proto_msgTypes[10].OneofWrappers = []any{}
 	type x struct{}
 	out := protoimpl.TypeBuilder{
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_belief_v1_query_proto_rawDesc), len(file_belief_v1_query_proto_rawDesc)),
 			NumEnums:      1,
-			NumMessages:   16,
+			NumMessages:   18,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

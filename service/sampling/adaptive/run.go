@@ -1,0 +1,268 @@
+package adaptive
+
+import (
+	"context"
+	"fmt"
+	"runtime"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"github.com/beliefd/beliefd/service/model"
+	"github.com/beliefd/beliefd/service/sampling"
+)
+
+// abortEvery is how many samples a block draws between looks at the abort flag.
+const abortEvery = 1024
+
+// ReasonEpsDelta is the stop reason of a run ended by the (ε, δ) rule.
+const ReasonEpsDelta = "eps_delta"
+
+func defaultWorkers() int { return runtime.GOMAXPROCS(0) }
+
+// Tracks is the number of tracks (the main one first).
+func (s *Sampler) Tracks() int { return len(s.tracks) }
+
+// Targets returns the target variables in the order of the marginals.
+func (s *Sampler) Targets() []int { return append([]int(nil), s.targets...) }
+
+// Learning describes the learning phase.
+func (s *Sampler) Learning() LearningReport { return s.learn }
+
+// PerTrackSamples is the most samples each track draws under stop: the
+// stop's MaxSamples shared equally by the tracks.
+func (s *Sampler) PerTrackSamples(stop sampling.Stop) int64 {
+	return max(1, stop.MaxSamples/int64(len(s.tracks)))
+}
+
+// RunBlock draws block `block` of a run with the given seed: n samples for
+// every track, track i from its own stream of (seed, block) only. dst is
+// overwritten (its storage reused). Merging blocks 0, 1, 2, ... gives the
+// same bits wherever they were drawn.
+func (s *Sampler) RunBlock(seed uint64, block int64, n int, dst *Stats) {
+	s.runBlock(seed, block, n, dst, nil)
+}
+
+func (s *Sampler) runBlock(seed uint64, block int64, n int, dst *Stats, abort *atomic.Bool) bool {
+	s.reset(dst)
+	if n <= 0 {
+		return true
+	}
+	x := make([]int32, len(s.nodes))
+	var top topHeap = make([]float64, 0, TopWeights)
+	for i, t := range s.tracks {
+		ts := &dst.Tracks[i]
+		ts.N = int64(n)
+		ts.Blocks = 1
+		if t.impossible {
+			continue
+		}
+		r := sampling.NewStream(seed, trackStream(i, block))
+		top = top[:0]
+		var acc int64
+		var sumW, sumW2, maxW float64
+		for k := 0; k < n; k++ {
+			if k&(abortEvery-1) == abortEvery-1 && abort != nil && abort.Load() {
+				return false
+			}
+			w := s.draw(t, &r, x, nil)
+			if !(w > 0) {
+				continue
+			}
+			acc++
+			sumW += w
+			w2 := w * w
+			sumW2 += w2
+			if w > maxW {
+				maxW = w
+			}
+			top.push(w)
+			if i == 0 {
+				for ti, v := range s.targets {
+					j := int(s.tOff[ti]) + int(x[v])
+					ts.StateW[j] += w
+					ts.StateW2[j] += w2
+				}
+			}
+		}
+		ts.Accepted, ts.SumW, ts.SumW2, ts.MaxW = acc, sumW, sumW2, maxW
+		ts.Top = top.sorted(ts.Top)
+	}
+	dst.Blocks = 1
+	return true
+}
+
+// StopReason tells whether a run whose merged statistics are st has
+// finished under stop (normalised): ReasonAbsErr or ReasonRelErr when every
+// target interval and P(evidence) meet the precision rule, ReasonEpsDelta
+// when the (ε, δ) rule holds on every track, ReasonMaxSamples when every
+// track drew its share of stop.MaxSamples, "" otherwise.
+func (s *Sampler) StopReason(st *Stats, stop sampling.Stop) string {
+	return s.stopReason(st, stop, nil)
+}
+
+func (s *Sampler) stopReason(st *Stats, stop sampling.Stop, buf []sampling.Interval) string {
+	if stop.AbsErr > 0 || stop.RelErr > 0 {
+		if r := stop.PrecisionMet(s.precisionIntervals(st, confidenceOf(stop), buf)); r != "" {
+			return r
+		}
+	}
+	if s.opt.EpsDelta != nil && s.epsDeltaMet(st) {
+		return ReasonEpsDelta
+	}
+	if st.Tracks[0].N >= s.PerTrackSamples(stop) {
+		return sampling.ReasonMaxSamples
+	}
+	return ""
+}
+
+// Run estimates the posterior marginals of targets given ev with the
+// adaptive importance sampler: NewSampler, then Sampler.Run.
+func Run(ctx context.Context, net *model.Network, ev *model.Evidence, targets []int, opt Options) (*Result, error) {
+	start := time.Now()
+	s, err := NewSampler(ctx, net, ev, targets, opt)
+	if err != nil {
+		return nil, err
+	}
+	return s.run(ctx, start)
+}
+
+// Run draws blocks on the sampler's Workers goroutines and merges them
+// strictly in block order, so that the same seed gives the same bits
+// whatever the number of workers. It stops at the first rule that holds;
+// on timeout or cancellation it returns the estimate of the blocks merged
+// so far (stop reason timeout or cancelled), not an error.
+func (s *Sampler) Run(ctx context.Context) (*Result, error) {
+	return s.run(ctx, time.Now())
+}
+
+type blockResult struct {
+	block int64
+	st    *Stats
+	err   error
+}
+
+func (s *Sampler) run(ctx context.Context, start time.Time) (*Result, error) {
+	stop := s.opt.Stop
+	bs := s.opt.BlockSize
+	perTrack := s.PerTrackSamples(stop)
+	total := sampling.NumBlocks(perTrack, bs)
+	workers := int(min(int64(s.opt.Workers), total))
+	ahead := 2 * workers
+	jobs := make(chan int64, ahead)
+	results := make(chan blockResult, ahead)
+	free := make(chan *Stats, ahead+workers)
+	var abort atomic.Bool
+	var wg sync.WaitGroup
+	for range workers {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for b := range jobs {
+				if abort.Load() {
+					continue
+				}
+				var st *Stats
+				select {
+				case st = <-free:
+				default:
+					st = s.NewStats()
+				}
+				ok, err := s.safeBlock(b, sampling.BlockLen(b, bs, perTrack), st, &abort)
+				if ok || err != nil {
+					results <- blockResult{block: b, st: st, err: err}
+				}
+			}
+		}()
+	}
+	merged := s.NewStats()
+	pending := make(map[int64]*Stats, ahead)
+	next, m := int64(0), int64(0)
+	dispatch := func() {
+		for next < total && next < m+int64(ahead) {
+			jobs <- next
+			next++
+		}
+	}
+	var timeout <-chan time.Time
+	if stop.Timeout > 0 {
+		t := time.NewTimer(stop.Timeout - time.Since(start))
+		defer t.Stop()
+		timeout = t.C
+	}
+	buf := make([]sampling.Interval, 0, s.states+1)
+	lastProgress := time.Now()
+	reason := ""
+	var failure error
+	if ctx.Err() != nil {
+		reason = sampling.ReasonCancelled
+	} else {
+		dispatch()
+	}
+	prev := make([]float64, len(s.tracks))
+	for reason == "" && failure == nil {
+		select {
+		case <-ctx.Done():
+			reason = sampling.ReasonCancelled
+		case <-timeout:
+			reason = sampling.ReasonTimeout
+		case res := <-results:
+			if res.err != nil {
+				failure = res.err
+				break
+			}
+			pending[res.block] = res.st
+			for st, ok := pending[m]; ok && reason == ""; st, ok = pending[m] {
+				delete(pending, m)
+				for i := range prev {
+					prev[i] = merged.Tracks[i].SumW
+				}
+				if err := merged.Merge(st); err != nil {
+					failure = fmt.Errorf("adaptive: %w: %w", sampling.ErrInternal, err)
+					break
+				}
+				if s.opt.EpsDelta != nil {
+					s.markCrossings(merged, prev, m, st)
+				}
+				select {
+				case free <- st:
+				default:
+				}
+				m++
+				reason = s.stopReason(merged, stop, buf)
+			}
+			if reason == "" && failure == nil {
+				dispatch()
+				if s.opt.Progress != nil && merged.Tracks[0].N > 0 && time.Since(lastProgress) >= s.opt.ProgressEvery {
+					s.opt.Progress(s.result(merged, "", start))
+					lastProgress = time.Now()
+				}
+			}
+		}
+	}
+	abort.Store(true)
+	close(jobs)
+	wg.Wait()
+	if failure != nil {
+		return nil, failure
+	}
+	return s.result(merged, reason, start), nil
+}
+
+// safeBlock draws one block, turning a panic into an error.
+func (s *Sampler) safeBlock(b int64, n int, st *Stats, abort *atomic.Bool) (ok bool, err error) {
+	defer func() {
+		if p := recover(); p != nil {
+			ok, err = false, fmt.Errorf("adaptive: %w: block %d: %v", sampling.ErrInternal, b, p)
+		}
+	}()
+	return s.runBlock(s.opt.Seed, b, n, st, abort), nil
+}
+
+func (s *Sampler) result(merged *Stats, reason string, start time.Time) *Result {
+	res := s.Summarize(merged, s.opt.Stop)
+	res.Estimate.Seed = s.opt.Seed
+	res.Estimate.StopReason = reason
+	res.Estimate.Elapsed = time.Since(start)
+	return res
+}
