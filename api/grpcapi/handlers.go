@@ -4,6 +4,9 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"maps"
+	"math"
+	"slices"
 	"strings"
 
 	"github.com/beliefd/beliefd/api/convert"
@@ -20,9 +23,13 @@ func (s *Server) CreateModel(ctx context.Context, req *beliefv1.CreateModelReque
 	if req.GetModel() == nil {
 		return nil, invalid("model", "no model given")
 	}
-	doc, err := json.Marshal(convert.ModelFromProto(req.GetModel()))
+	d := convert.ModelFromProto(req.GetModel())
+	doc, err := json.Marshal(d)
 	if err != nil {
 		// Only numbers JSON cannot hold (NaN, infinities) get here.
+		if verr := nonFinite(d); verr != nil {
+			return nil, s.fail(ctx, fmt.Errorf("put model %q: %w", d.Name, verr), "model.")
+		}
 		return nil, s.fail(ctx, fmt.Errorf("%w: %v", model.ErrMalformed, err), "model.")
 	}
 	info, created, err := s.svc.PutModel(ctx, doc)
@@ -30,6 +37,57 @@ func (s *Server) CreateModel(ctx context.Context, req *beliefv1.CreateModelReque
 		return nil, s.fail(ctx, err, "model.")
 	}
 	return &beliefv1.CreateModelResponse{Info: convert.ModelInfoToProto(info), Created: created}, nil
+}
+
+// nonFinite names the numbers of a model message that are NaN or infinite
+// (a JSON document cannot hold them), by variable and field as validation
+// names its problems.
+func nonFinite(d *model.Document) error {
+	var probs []model.Problem
+	check := func(v *model.Variable, field, where string, x float64) {
+		if len(probs) < 25 && (math.IsNaN(x) || math.IsInf(x, 0)) {
+			probs = append(probs, model.Problem{Variable: v.Name, Field: field, Message: fmt.Sprintf("%s is %v; numbers must be finite", where, x)})
+		}
+	}
+	for i := range d.Variables {
+		v := &d.Variables[i]
+		for r, row := range v.Table {
+			for k, x := range row {
+				check(v, "table", fmt.Sprintf("row %d value %d", r, k+1), x)
+			}
+		}
+		for r, row := range v.Rows {
+			for k, x := range row.P {
+				check(v, "rows", fmt.Sprintf("row %d value %d", r, k+1), x)
+			}
+		}
+		if n := v.NoisyOR; n != nil {
+			check(v, "noisy_or", "leak", n.Leak)
+			for _, p := range slices.Sorted(maps.Keys(n.Links)) {
+				check(v, "noisy_or", fmt.Sprintf("link for %q", p), n.Links[p])
+			}
+		}
+		if n := v.NoisyMAX; n != nil {
+			for k, x := range n.Leak {
+				check(v, "noisy_max", fmt.Sprintf("leak value %d", k+1), x)
+			}
+			for _, p := range slices.Sorted(maps.Keys(n.Links)) {
+				for _, st := range slices.Sorted(maps.Keys(n.Links[p])) {
+					for k, x := range n.Links[p][st] {
+						check(v, "noisy_max", fmt.Sprintf("link for %q in state %q value %d", p, st, k+1), x)
+					}
+				}
+			}
+		}
+		if f := v.FailureRate; f != nil {
+			check(v, "failure_rate", "lambda", f.Lambda)
+			check(v, "failure_rate", "mission_time", f.MissionTime)
+		}
+	}
+	if len(probs) == 0 {
+		return nil
+	}
+	return &model.ValidationError{Problems: probs}
 }
 
 // GetModel implements beliefv1.ModelServiceServer.

@@ -115,6 +115,12 @@ func (s *Service) advance(ctx context.Context, id string) (bool, error) {
 		if errors.Is(err, errNoChange) {
 			continue
 		}
+		var unstorable *json.UnsupportedValueError
+		if errors.As(err, &unstorable) {
+			// A result the store cannot encode (a NaN) would fail every
+			// merge of this job and stop every worker at it: fail the job.
+			return progressed, s.fail(ctx, id, fmt.Errorf("the merged result cannot be stored: %w", err))
+		}
 		if err != nil {
 			return progressed, err
 		}

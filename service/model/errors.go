@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"strings"
+	"unicode/utf8"
 )
 
 // ErrInvalid is wrapped by every validation error, so callers can branch
@@ -77,14 +78,43 @@ type problems struct {
 
 func (ps *problems) add(variable, field, format string, args ...any) {
 	if len(ps.list) < maxProblems {
-		ps.list = append(ps.list, Problem{Variable: variable, Field: field, Message: fmt.Sprintf(format, args...)})
+		ps.list = append(ps.list, Problem{Variable: echo(variable), Field: field, Message: fmt.Sprintf(format, echoArgs(args)...)})
 	}
 }
 
 func (ps *problems) addLimit(variable, field, format string, args ...any) {
 	if len(ps.list) < maxProblems {
-		ps.list = append(ps.list, Problem{Variable: variable, Field: field, Message: fmt.Sprintf(format, args...), tooLarge: true})
+		ps.list = append(ps.list, Problem{Variable: echo(variable), Field: field, Message: fmt.Sprintf(format, echoArgs(args)...), tooLarge: true})
 	}
+}
+
+// maxEcho bounds how much of a name from the document a problem repeats,
+// so that an error stays small however long the names (25 problems each
+// quoting a name of megabytes would otherwise make an error of tens of
+// megabytes from one request).
+const maxEcho = 512
+
+// echo returns s, or its first maxEcho bytes (on a character boundary)
+// with its length when it is longer.
+func echo(s string) string {
+	if len(s) <= maxEcho {
+		return s
+	}
+	cut := maxEcho
+	for cut > 0 && !utf8.RuneStart(s[cut]) {
+		cut--
+	}
+	return fmt.Sprintf("%s…(%d bytes)", s[:cut], len(s))
+}
+
+// echoArgs shortens the long strings among format arguments.
+func echoArgs(args []any) []any {
+	for i, a := range args {
+		if s, ok := a.(string); ok && len(s) > maxEcho {
+			args[i] = echo(s)
+		}
+	}
+	return args
 }
 
 func (ps *problems) err() error {

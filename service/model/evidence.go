@@ -63,7 +63,7 @@ func (net *Network) NoEvidence() *Evidence {
 
 // ResolveEvidence turns named evidence into indices, naming any unknown
 // variable or state. A variable may carry hard or soft evidence, not both.
-// Soft likelihoods must be finite, >= 0, one per state, and not all zero.
+// Soft likelihoods must be in [0, 1], one per state, and not all zero.
 func (net *Network) ResolveEvidence(hard map[string]string, soft map[string][]float64) (*Evidence, error) {
 	e := net.NoEvidence()
 	for _, name := range sortedKeys(hard) {
@@ -93,6 +93,10 @@ func (net *Network) ResolveEvidence(hard map[string]string, soft map[string][]fl
 		for k, l := range lik {
 			if math.IsNaN(l) || math.IsInf(l, 0) || l < 0 {
 				return nil, fmt.Errorf("%w: soft evidence on %q: likelihood %d = %g must be finite and >= 0", ErrBadEvidence, name, k+1, l)
+			}
+			if l > 1 {
+				// Larger values would let the samplers' weights overflow.
+				return nil, fmt.Errorf("%w: soft evidence on %q: likelihood %d = %g is above 1 (a likelihood is P(reading | state)); divide the vector by its largest value", ErrBadEvidence, name, k+1, l)
 			}
 			if l > 0 {
 				any = true

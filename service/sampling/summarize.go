@@ -145,6 +145,11 @@ func weightedInterval(a, a2, sumW, sumW2, ess float64, nonzero int, z, conf floa
 	if a > 0 && nonzero == 1 {
 		p = 1 // the only state seen; the sums agree up to rounding
 	}
+	if sumW2 == 0 || sumW*sumW == 0 {
+		// Weights below about 1e-154 have squares that underflow to 0: no
+		// variance can be computed (and 0/0 would be NaN).
+		return Interval{P: p, Lo: 0, Hi: 1}
+	}
 	// sum w²(I-p)² = (1-p)² sum_{I=1} w² + p² sum_{I=0} w², both terms >= 0.
 	rest := math.Max(0, sumW2-a2)
 	v := ((1-p)*(1-p)*a2 + p*p*rest) / (sumW * sumW)
@@ -182,6 +187,10 @@ func (k *Kernel) evidenceInterval(s *Stats, conf float64) (Interval, bool) {
 		}
 		n := float64(s.N)
 		mean := s.SumW / n
+		if s.SumW2 == 0 {
+			// The squares of the weights underflow: no variance.
+			return Interval{P: mean, Lo: 0, Hi: math.Max(mean, k.maxWeight)}, true // mean > maxWeight by rounding only
+		}
 		variance := math.Max(0, (s.SumW2-s.SumW*mean)/(n-1))
 		iv := NormalInterval(mean, math.Sqrt(variance/n), conf, 0, k.maxWeight)
 		// With (nearly) constant weights the interval shrinks to the
@@ -222,6 +231,10 @@ func (k *Kernel) warnings(s *Stats, est *Estimate, conf float64) []string {
 		if s.SumW <= 0 {
 			w = append(w, fmt.Sprintf("every sample had weight 0 in %d draws (none was consistent with the evidence); P(evidence) is below %.3g at %g%% confidence",
 				s.N, est.Evidence.Hi, pct))
+			break
+		}
+		if s.SumW2 == 0 {
+			w = append(w, "the likelihood weights are too small for floating point (below about 1e-154, their squares are 0), so no interval can be computed: the intervals are [0, 1]; exact inference does not have this limit")
 			break
 		}
 		if est.EffectiveSamples < lowESSRatio*float64(s.N) {
