@@ -80,6 +80,7 @@ func newService(store jobs.Store, cfg *serverConfig, log *slog.Logger) (*jobs.Se
 		MaxUnfinished:   cfg.MaxUnfinished,
 		Retention:       cfg.Retention,
 		MaxJobTime:      cfg.MaxJobTime,
+		LeaseTime:       cfg.LeaseTime,
 		Logger:          log,
 	}, m)
 	if err != nil {
@@ -143,12 +144,14 @@ func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		return fmt.Errorf("--grpc-addr %s: %w", cfg.GRPCAddr, err)
 	}
 	hs := &http.Server{
-		Handler:           httpapi.New(svc, httpapi.Options{Logger: log, Metrics: m, MetricsHandler: metrics.Handler(reg)}),
+		Handler:           httpapi.New(svc, httpapi.Options{Logger: log, Metrics: m, MetricsHandler: metrics.Handler(reg), MaxModelBytes: cfg.MaxBodyBytes}),
 		ReadHeaderTimeout: 10 * time.Second,
 		ReadTimeout:       time.Minute,
 		IdleTimeout:       2 * time.Minute,
 	}
-	gopts := grpcapi.Options{Logger: log, Metrics: m}
+	// A model message carries the same content as its JSON document, in
+	// fewer bytes; the same limit bounds both.
+	gopts := grpcapi.Options{Logger: log, Metrics: m, MaxMessageBytes: int(cfg.MaxBodyBytes)}
 	gs := grpc.NewServer(grpcapi.ServerOptions(gopts)...)
 	gsrv := grpcapi.Register(gs, svc, gopts)
 	healthCtx, stopHealth := context.WithCancel(context.Background())

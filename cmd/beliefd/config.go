@@ -27,6 +27,7 @@ type serverConfig struct {
 	Retention       time.Duration // --retention, BELIEFD_RETENTION
 	MaxJobTime      time.Duration // --max-job-time, BELIEFD_MAX_JOB_TIME
 	ShutdownTimeout time.Duration // --shutdown-timeout, BELIEFD_SHUTDOWN_TIMEOUT
+	LeaseTime       time.Duration // --lease-time, BELIEFD_LEASE_TIME
 	MaxBodyBytes    int64         // --max-body-bytes, BELIEFD_MAX_BODY_BYTES
 	ExactLimit      int           // --exact-limit, BELIEFD_EXACT_LIMIT
 	LogFormat       string        // --log-format, BELIEFD_LOG_FORMAT: text or json
@@ -40,7 +41,7 @@ func bindServerFlags(fs *flag.FlagSet, cfg *serverConfig, api bool) {
 		fs.StringVar(&cfg.HTTPAddr, "http-addr", ":8080", "HTTP listen address (JSON API, events, metrics, health)")
 		fs.StringVar(&cfg.GRPCAddr, "grpc-addr", ":9090", "gRPC listen address")
 		fs.BoolVar(&cfg.Preload, "preload", true, "load the example models at start when the store has none of that name")
-		fs.Int64Var(&cfg.MaxBodyBytes, "max-body-bytes", 16<<20, "largest request body accepted")
+		fs.Int64Var(&cfg.MaxBodyBytes, "max-body-bytes", 64<<20, "largest model document accepted over HTTP (JSON) or gRPC (message); queries are limited to 1 MiB")
 		fs.DurationVar(&cfg.ShutdownTimeout, "shutdown-timeout", 20*time.Second, "how long SIGTERM waits for requests and blocks in flight")
 	} else {
 		fs.StringVar(&cfg.MetricsAddr, "metrics-addr", ":8081", "address serving /metrics, /healthz and /readyz (empty: none)")
@@ -51,6 +52,7 @@ func bindServerFlags(fs *flag.FlagSet, cfg *serverConfig, api bool) {
 	fs.IntVar(&cfg.MaxUnfinished, "max-jobs", 1000, "queued and running jobs allowed before submissions are refused (429)")
 	fs.DurationVar(&cfg.Retention, "retention", 24*time.Hour, "how long finished jobs are kept")
 	fs.DurationVar(&cfg.MaxJobTime, "max-job-time", 10*time.Minute, "deadline of a job whose query gives no timeout")
+	fs.DurationVar(&cfg.LeaseTime, "lease-time", 15*time.Second, "lease on a block of samples; a worker renews it every third of it, and a block whose worker stops is taken up by another after the lease (plus a 2s clock margin)")
 	fs.IntVar(&cfg.ExactLimit, "exact-limit", 0, "largest junction tree (total table entries) exact inference may build (default 50,000,000)")
 	fs.StringVar(&cfg.LogFormat, "log-format", "text", "log format: text or json")
 	fs.StringVar(&cfg.LogLevel, "log-level", "info", "log level: debug, info, warn or error")
@@ -90,8 +92,8 @@ func (c *serverConfig) Validate(api bool) error {
 				return bad("%s %q: want HOST:PORT or :PORT", a.name, a.v)
 			}
 		}
-		if c.MaxBodyBytes < 1024 {
-			return bad("--max-body-bytes %d: want at least 1024", c.MaxBodyBytes)
+		if c.MaxBodyBytes < 1024 || c.MaxBodyBytes > 1<<30 {
+			return bad("--max-body-bytes %d: want 1024 to 1073741824", c.MaxBodyBytes)
 		}
 	} else {
 		if c.Redis == "" {
@@ -121,6 +123,8 @@ func (c *serverConfig) Validate(api bool) error {
 		return bad("--retention %s: want at least 1s", c.Retention)
 	case c.MaxJobTime < time.Second:
 		return bad("--max-job-time %s: want at least 1s", c.MaxJobTime)
+	case c.LeaseTime < 100*time.Millisecond:
+		return bad("--lease-time %s: want at least 100ms", c.LeaseTime)
 	case c.ShutdownTimeout < 0:
 		return bad("--shutdown-timeout %s: want 0 or more", c.ShutdownTimeout)
 	case c.ExactLimit < 0:
