@@ -9,7 +9,8 @@
 //	 "evidence": {"var": "state"},
 //	 "soft_evidence": {"var": [likelihood per state]},
 //	 "targets": ["var"],            // default: every variable without hard evidence
-//	 "method": "auto" | "exact" | "forward" | "rejection" | "likelihood-weighting" | "gibbs",
+//	 "method": "auto" | "exact" | "forward" | "rejection" | "likelihood-weighting" | "gibbs" | "adaptive-importance",
+//	 "adaptive": {"rare_targets": ["var"], "rare_threshold": 0.001, "eps_delta": {"epsilon": 0.1, "delta": 0.05}},
 //	 "mpe": false,                  // also compute the most probable explanation
 //	 "stop": {"max_samples": 1000000, "timeout": "30s", "abs_err": 0.01,
 //	          "rel_err": 0.1, "confidence": 0.95},
