@@ -15,14 +15,14 @@ import (
 )
 
 // prob renders a probability with four significant digits, switching to
-// scientific notation below 0.001 so that small values keep their digits.
+// scientific notation below 0.01 so that small values keep their digits.
 func prob(p float64) string {
 	switch {
 	case p == 0:
 		return "0"
 	case p == 1:
 		return "1"
-	case p < 1e-3:
+	case p < 1e-2:
 		return fmt.Sprintf("%.3e", p)
 	}
 	return fmt.Sprintf("%.4f", p)
