@@ -98,15 +98,18 @@ func (s *Service) Cancel(ctx context.Context, id string) (*Job, error) {
 // channel, drained and refilled). The channel is closed after a terminal
 // state has been delivered, when the job disappears, or when ctx ends.
 func (s *Service) Watch(ctx context.Context, id string) (<-chan *Job, error) {
-	j, err := s.store.GetJob(ctx, id)
-	if err != nil {
-		return nil, fmt.Errorf("watch job %q: %w", id, err)
-	}
+	// Subscribe before the first read, so that a change between the read
+	// and the subscription is not missed until the next poll.
 	sig, unsubscribe, err := s.store.Subscribe(ctx, id)
 	if err != nil {
 		// Notifications are best effort: fall back to polling.
 		s.log.Warn("watch: subscribe failed; polling", "job", id, "err", err)
 		sig, unsubscribe = nil, func() {}
+	}
+	j, err := s.store.GetJob(ctx, id)
+	if err != nil {
+		unsubscribe()
+		return nil, fmt.Errorf("watch job %q: %w", id, err)
 	}
 	out := make(chan *Job, 1)
 	send := func(j *Job) {
