@@ -21,8 +21,9 @@
 //
 // A query enters hard evidence by zeroing the other states, and soft
 // evidence (a likelihood vector) by multiplying it in, each in the smallest
-// clique holding the variable. Posterior then runs the two passes of the
-// Hugin architecture: collect sends separator marginals from the leaves to
+// clique holding the variable. Posterior then runs two passes with
+// division by separator potentials (Jensen, Lauritzen & Olesen 1990,
+// Computational Statistics Quarterly 4): collect sends separator marginals from the leaves to
 // the root; distribute sends the root's beliefs back, dividing out what each
 // clique sent (0/0 = 0). The distribute pass visits only the cliques on the
 // paths to the targets' cliques. The parent side of each message goes
