@@ -5,7 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"runtime"
-	"sync"
 	"sync/atomic"
 	"time"
 
@@ -106,123 +105,38 @@ type runner struct {
 	start     time.Time
 }
 
-type blockResult struct {
-	block int64
-	st    *Stats
-	err   error
-}
-
 func (r *runner) run(ctx context.Context) (*Estimate, error) {
 	k := r.k
-	total := NumBlocks(r.stop.MaxSamples, r.blockSize)
-	workers := int(min(int64(r.workers), total))
-	// At most `ahead` blocks are handed out and not yet merged, which
-	// bounds both the work wasted past the stopping point and the memory.
-	ahead := 2 * workers
-	jobs := make(chan int64, ahead)
-	results := make(chan blockResult, ahead)
-	free := make(chan *Stats, ahead+workers)
-	var abort atomic.Bool
-	var wg sync.WaitGroup
-	for range workers {
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			for b := range jobs {
-				if abort.Load() {
-					continue
-				}
-				var st *Stats
-				select {
-				case st = <-free:
-				default:
-					st = k.NewStats()
-				}
-				ok, err := r.runBlock(b, st, &abort)
-				if ok || err != nil {
-					results <- blockResult{block: b, st: st, err: err}
-				}
-			}
-		}()
-	}
-	merged := k.NewStats()
-	pending := make(map[int64]*Stats, ahead)
-	next, m := int64(0), int64(0)
-	dispatch := func() {
-		for next < total && next < m+int64(ahead) {
-			jobs <- next
-			next++
-		}
-	}
-	var timeout <-chan time.Time
-	if r.stop.Timeout > 0 {
-		t := time.NewTimer(r.stop.Timeout - time.Since(r.start))
-		defer t.Stop()
-		timeout = t.C
-	}
 	buf := make([]Interval, 0, k.states+1)
-	lastProgress := time.Now()
-	reason := ""
-	var failure error
-	if ctx.Err() != nil {
-		reason = ReasonCancelled
-	} else {
-		dispatch()
+	plan := BlockPlan[*Stats]{
+		Blocks:  NumBlocks(r.stop.MaxSamples, r.blockSize),
+		Workers: r.workers,
+		Start:   r.start,
+		Timeout: r.stop.Timeout,
+		New:     k.NewStats,
+		Run: func(b int64, st *Stats, abort *atomic.Bool) bool {
+			if testHookBlock != nil {
+				testHookBlock(b)
+			}
+			return k.runBlock(r.seed, b, BlockLen(b, r.blockSize, r.stop.MaxSamples), st, abort)
+		},
+		Merge: func(merged, st *Stats, _ int64) error {
+			if err := merged.Merge(st); err != nil {
+				return fmt.Errorf("sampling: %w: %w", ErrInternal, err)
+			}
+			return nil
+		},
+		Stop:  func(merged *Stats) string { return k.stopReason(merged, r.stop, buf) },
+		Every: r.every,
 	}
-	for reason == "" && failure == nil {
-		select {
-		case <-ctx.Done():
-			reason = ReasonCancelled
-		case <-timeout:
-			reason = ReasonTimeout
-		case res := <-results:
-			if res.err != nil {
-				failure = res.err
-				break
-			}
-			pending[res.block] = res.st
-			for st, ok := pending[m]; ok && reason == ""; st, ok = pending[m] {
-				delete(pending, m)
-				if err := merged.Merge(st); err != nil {
-					failure = fmt.Errorf("sampling: %w: %w", ErrInternal, err)
-					break
-				}
-				select {
-				case free <- st:
-				default:
-				}
-				m++
-				reason = k.stopReason(merged, r.stop, buf)
-			}
-			if reason == "" && failure == nil {
-				dispatch()
-				if r.progress != nil && merged.N > 0 && time.Since(lastProgress) >= r.every {
-					r.progress(r.estimate(merged, ""))
-					lastProgress = time.Now()
-				}
-			}
-		}
+	if r.progress != nil {
+		plan.Progress = func(merged *Stats) { r.progress(r.estimate(merged, "")) }
 	}
-	abort.Store(true)
-	close(jobs)
-	wg.Wait()
-	if failure != nil {
-		return nil, failure
+	merged, reason, err := RunBlocks(ctx, plan)
+	if err != nil {
+		return nil, err
 	}
 	return r.estimate(merged, reason), nil
-}
-
-// runBlock draws one block, turning a panic into an error.
-func (r *runner) runBlock(b int64, st *Stats, abort *atomic.Bool) (ok bool, err error) {
-	defer func() {
-		if p := recover(); p != nil {
-			ok, err = false, fmt.Errorf("sampling: %w: block %d: %v", ErrInternal, b, p)
-		}
-	}()
-	if testHookBlock != nil {
-		testHookBlock(b)
-	}
-	return r.k.runBlock(r.seed, b, BlockLen(b, r.blockSize, r.stop.MaxSamples), st, abort), nil
 }
 
 func (r *runner) estimate(merged *Stats, reason string) *Estimate {

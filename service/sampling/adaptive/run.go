@@ -4,7 +4,6 @@ import (
 	"context"
 	"fmt"
 	"runtime"
-	"sync"
 	"sync/atomic"
 	"time"
 
@@ -136,127 +135,44 @@ func (s *Sampler) Run(ctx context.Context) (*Result, error) {
 	return s.run(ctx, time.Now())
 }
 
-type blockResult struct {
-	block int64
-	st    *Stats
-	err   error
-}
-
 func (s *Sampler) run(ctx context.Context, start time.Time) (*Result, error) {
 	stop := s.opt.Stop
 	bs := s.opt.BlockSize
 	perTrack := s.PerTrackSamples(stop)
-	total := sampling.NumBlocks(perTrack, bs)
-	workers := int(min(int64(s.opt.Workers), total))
-	ahead := 2 * workers
-	jobs := make(chan int64, ahead)
-	results := make(chan blockResult, ahead)
-	free := make(chan *Stats, ahead+workers)
-	var abort atomic.Bool
-	var wg sync.WaitGroup
-	for range workers {
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			for b := range jobs {
-				if abort.Load() {
-					continue
-				}
-				var st *Stats
-				select {
-				case st = <-free:
-				default:
-					st = s.NewStats()
-				}
-				ok, err := s.safeBlock(b, sampling.BlockLen(b, bs, perTrack), st, &abort)
-				if ok || err != nil {
-					results <- blockResult{block: b, st: st, err: err}
-				}
-			}
-		}()
-	}
-	merged := s.NewStats()
-	pending := make(map[int64]*Stats, ahead)
-	next, m := int64(0), int64(0)
-	dispatch := func() {
-		for next < total && next < m+int64(ahead) {
-			jobs <- next
-			next++
-		}
-	}
-	var timeout <-chan time.Time
-	if stop.Timeout > 0 {
-		t := time.NewTimer(stop.Timeout - time.Since(start))
-		defer t.Stop()
-		timeout = t.C
-	}
 	buf := make([]sampling.Interval, 0, s.states+1)
-	lastProgress := time.Now()
-	reason := ""
-	var failure error
-	if ctx.Err() != nil {
-		reason = sampling.ReasonCancelled
-	} else {
-		dispatch()
-	}
 	prev := make([]float64, len(s.tracks))
-	for reason == "" && failure == nil {
-		select {
-		case <-ctx.Done():
-			reason = sampling.ReasonCancelled
-		case <-timeout:
-			reason = sampling.ReasonTimeout
-		case res := <-results:
-			if res.err != nil {
-				failure = res.err
-				break
+	plan := sampling.BlockPlan[*Stats]{
+		Blocks:  sampling.NumBlocks(perTrack, bs),
+		Workers: s.opt.Workers,
+		Start:   start,
+		Timeout: stop.Timeout,
+		New:     s.NewStats,
+		Run: func(b int64, st *Stats, abort *atomic.Bool) bool {
+			return s.runBlock(s.opt.Seed, b, sampling.BlockLen(b, bs, perTrack), st, abort)
+		},
+		Merge: func(merged, st *Stats, b int64) error {
+			for i := range prev {
+				prev[i] = merged.Tracks[i].SumW
 			}
-			pending[res.block] = res.st
-			for st, ok := pending[m]; ok && reason == ""; st, ok = pending[m] {
-				delete(pending, m)
-				for i := range prev {
-					prev[i] = merged.Tracks[i].SumW
-				}
-				if err := merged.Merge(st); err != nil {
-					failure = fmt.Errorf("adaptive: %w: %w", sampling.ErrInternal, err)
-					break
-				}
-				if s.opt.EpsDelta != nil {
-					s.markCrossings(merged, prev, m, st)
-				}
-				select {
-				case free <- st:
-				default:
-				}
-				m++
-				reason = s.stopReason(merged, stop, buf)
+			if err := merged.Merge(st); err != nil {
+				return fmt.Errorf("adaptive: %w: %w", sampling.ErrInternal, err)
 			}
-			if reason == "" && failure == nil {
-				dispatch()
-				if s.opt.Progress != nil && merged.Tracks[0].N > 0 && time.Since(lastProgress) >= s.opt.ProgressEvery {
-					s.opt.Progress(s.result(merged, "", start))
-					lastProgress = time.Now()
-				}
+			if s.opt.EpsDelta != nil {
+				s.markCrossings(merged, prev, b, st)
 			}
-		}
+			return nil
+		},
+		Stop:  func(merged *Stats) string { return s.stopReason(merged, stop, buf) },
+		Every: s.opt.ProgressEvery,
 	}
-	abort.Store(true)
-	close(jobs)
-	wg.Wait()
-	if failure != nil {
-		return nil, failure
+	if s.opt.Progress != nil {
+		plan.Progress = func(merged *Stats) { s.opt.Progress(s.result(merged, "", start)) }
+	}
+	merged, reason, err := sampling.RunBlocks(ctx, plan)
+	if err != nil {
+		return nil, err
 	}
 	return s.result(merged, reason, start), nil
-}
-
-// safeBlock draws one block, turning a panic into an error.
-func (s *Sampler) safeBlock(b int64, n int, st *Stats, abort *atomic.Bool) (ok bool, err error) {
-	defer func() {
-		if p := recover(); p != nil {
-			ok, err = false, fmt.Errorf("adaptive: %w: block %d: %v", sampling.ErrInternal, b, p)
-		}
-	}()
-	return s.runBlock(s.opt.Seed, b, n, st, abort), nil
 }
 
 func (s *Sampler) result(merged *Stats, reason string, start time.Time) *Result {
