@@ -60,7 +60,9 @@ func (p Priority) String() string {
 
 // Job is a job record as kept by a Store.
 type Job struct {
-	ID       string      `json:"id"`
+	ID string `json:"id"`
+	// Tenant owns the job ("" is the open tenant).
+	Tenant   string      `json:"tenant,omitempty"`
 	State    State       `json:"state"`
 	Priority Priority    `json:"priority"`
 	Query    infer.Query `json:"query"`
