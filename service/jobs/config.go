@@ -70,6 +70,9 @@ type Config struct {
 	// PartialEvery is the least interval between partial-result writes of
 	// a running job; default 500ms, at most MaxPartialEvery.
 	PartialEvery time.Duration
+	// TenantPolicy returns the quotas and scheduling share of a tenant;
+	// nil gives every tenant the zero policy (no quotas of its own, share 1).
+	TenantPolicy func(tenant string) TenantPolicy
 	// Clock is the time source for deadlines and records; default time.Now.
 	Clock func() time.Time
 	// Logger receives the service's logs; default slog.Default().
