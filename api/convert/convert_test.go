@@ -353,8 +353,8 @@ func TestEveryFieldHandled(t *testing.T) {
 		{reflect.TypeOf(sampling.Interval{}), "P Lo Hi"},
 		{reflect.TypeOf(sampling.Stop{}), "MaxSamples Timeout AbsErr RelErr Confidence"},
 		{reflect.TypeOf(jobs.ModelInfo{}), "Name Version Hash Variables Bytes CreatedAt"},
-		// Merged is the workers' working state, deliberately not carried.
-		{reflect.TypeOf(jobs.Job{}), "ID State Priority Query Model Method MethodReason Seed Stop BlockSize Blocks Merged MergedBlocks " +
+		// Merged and MergedAdaptive are the workers' working state, deliberately not carried.
+		{reflect.TypeOf(jobs.Job{}), "ID Tenant State Priority Query Model Method MethodReason Seed Stop BlockSize Blocks Merged MergedAdaptive MergedBlocks " +
 			"Result ResultAt Error IdempotencyKey CreatedAt StartedAt UpdatedAt FinishedAt Deadline Retention"},
 	} {
 		handled := map[string]bool{}

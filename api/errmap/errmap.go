@@ -8,9 +8,15 @@
 //	gibbs.ErrImpossibleEvidence, sampling.ErrBadStop,
 //	model.ErrTooLarge, exact.ErrTooCostly, *FieldError    400 INVALID_ARGUMENT
 //	*http.MaxBytesError (a request body over the limit)   413 INVALID_ARGUMENT
+//	ErrUnauthenticated (no or unknown bearer token)       401 UNAUTHENTICATED
+//	jobs.ErrForbidden (the caller's role does not allow)  403 PERMISSION_DENIED
 //	jobs.ErrNotFound                                      404 NOT_FOUND
+//	standing.ErrExists                                    409 ALREADY_EXISTS
+//	standing.ErrRevisionMismatch                          409 ABORTED
+//	standing.ErrLimit                                     429 RESOURCE_EXHAUSTED
 //	jobs.ErrConflict                                      409 ABORTED
 //	jobs.ErrQueueFull                                     429 RESOURCE_EXHAUSTED
+//	jobs.ErrQuotaExceeded                                 429 RESOURCE_EXHAUSTED
 //	jobs.ErrUnavailable                                   503 UNAVAILABLE
 //	context.DeadlineExceeded                              504 DEADLINE_EXCEEDED
 //	context.Canceled                                      499 CANCELLED
@@ -24,6 +30,7 @@ package errmap
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"net/http"
@@ -34,6 +41,7 @@ import (
 	"github.com/beliefd/beliefd/service/model"
 	"github.com/beliefd/beliefd/service/sampling"
 	"github.com/beliefd/beliefd/service/sampling/gibbs"
+	"github.com/beliefd/beliefd/service/standing"
 	"google.golang.org/genproto/googleapis/rpc/errdetails"
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
@@ -49,6 +57,10 @@ const StatusClientClosedRequest = 499
 
 // ErrInvalidArgument is wrapped by *FieldError.
 var ErrInvalidArgument = errors.New("invalid argument")
+
+// ErrUnauthenticated: the request carries no credentials, or credentials
+// the server does not know. Transports answer 401 / UNAUTHENTICATED.
+var ErrUnauthenticated = errors.New("unauthenticated")
 
 // FieldError is a transport-level problem with one request field, such as
 // a page size out of range. It wraps ErrInvalidArgument.
@@ -115,10 +127,16 @@ var rules = []rule{
 	{is: model.ErrBadEvidence, status: http.StatusBadRequest, code: codes.InvalidArgument, reason: "BAD_EVIDENCE"},
 	{is: infer.ErrBadQuery, status: http.StatusBadRequest, code: codes.InvalidArgument, reason: "BAD_QUERY"},
 	{is: ErrInvalidArgument, status: http.StatusBadRequest, code: codes.InvalidArgument, reason: "INVALID_ARGUMENT"},
+	{is: ErrUnauthenticated, status: http.StatusUnauthorized, code: codes.Unauthenticated, reason: "UNAUTHENTICATED"},
+	{is: jobs.ErrForbidden, status: http.StatusForbidden, code: codes.PermissionDenied, reason: "PERMISSION_DENIED"},
 	{is: jobs.ErrNotFound, status: http.StatusNotFound, code: codes.NotFound, reason: "NOT_FOUND"},
+	{is: standing.ErrExists, status: http.StatusConflict, code: codes.AlreadyExists, reason: "ALREADY_EXISTS", field: "id"},
+	{is: standing.ErrRevisionMismatch, status: http.StatusConflict, code: codes.Aborted, reason: "REVISION_MISMATCH", field: "expect_revision"},
+	{is: standing.ErrLimit, status: http.StatusTooManyRequests, code: codes.ResourceExhausted, reason: "STANDING_QUERY_LIMIT"},
 	{is: jobs.ErrConflict, status: http.StatusConflict, code: codes.Aborted, reason: "CONFLICT",
 		fixed: "a concurrent update won; try again"},
 	{is: jobs.ErrQueueFull, status: http.StatusTooManyRequests, code: codes.ResourceExhausted, reason: "QUEUE_FULL"},
+	{is: jobs.ErrQuotaExceeded, status: http.StatusTooManyRequests, code: codes.ResourceExhausted, reason: "QUOTA_EXCEEDED"},
 	{is: jobs.ErrUnavailable, status: http.StatusServiceUnavailable, code: codes.Unavailable, reason: "UNAVAILABLE",
 		fixed: "the job store is unavailable; try again later"},
 	{is: context.DeadlineExceeded, status: http.StatusGatewayTimeout, code: codes.DeadlineExceeded, reason: "DEADLINE_EXCEEDED",
@@ -180,6 +198,37 @@ func problemField(p model.Problem) string {
 		return p.Field
 	}
 	return "model"
+}
+
+// httpBody is the one error shape of the HTTP API.
+type httpBody struct {
+	Error httpDetail `json:"error"`
+}
+
+type httpDetail struct {
+	Status          int              `json:"status"`
+	Code            string           `json:"code"`
+	Reason          string           `json:"reason"`
+	Message         string           `json:"message"`
+	FieldViolations []FieldViolation `json:"field_violations"`
+}
+
+// WriteHTTP writes e as the HTTP API's error body with its status, for
+// handlers outside package httpapi (which writes the same shape).
+func (e Error) WriteHTTP(w http.ResponseWriter) {
+	v := e.Violations
+	if v == nil {
+		v = []FieldViolation{}
+	}
+	body, err := json.Marshal(httpBody{Error: httpDetail{Status: e.HTTPStatus, Code: CodeName(e.Code), Reason: e.Reason, Message: e.Message, FieldViolations: v}})
+	if err != nil {
+		// Only invalid UTF-8 could fail here, and json.Marshal replaces it.
+		body = []byte(`{"error":{"status":500,"code":"INTERNAL","reason":"INTERNAL","message":"internal error","field_violations":[]}}`)
+	}
+	w.Header().Set("Content-Type", "application/json")
+	w.Header().Set("X-Content-Type-Options", "nosniff")
+	w.WriteHeader(e.HTTPStatus)
+	_, _ = w.Write(append(body, '\n'))
 }
 
 // GRPC returns the gRPC status error for err, with an ErrorInfo detail and

@@ -88,6 +88,9 @@ func TestMap(t *testing.T) {
 		{"not found", fmt.Errorf("get job %q: %w", "j", jobs.ErrNotFound), 404, codes.NotFound, "NOT_FOUND", "", false},
 		{"conflict", fmt.Errorf("update: %w", jobs.ErrConflict), 409, codes.Aborted, "CONFLICT", "", true},
 		{"queue full", fmt.Errorf("submit: %w", jobs.ErrQueueFull), 429, codes.ResourceExhausted, "QUEUE_FULL", "", false},
+		{"quota", fmt.Errorf("submit: %w: max_samples_per_job of tenant %q is 1000", jobs.ErrQuotaExceeded, "t"), 429, codes.ResourceExhausted, "QUOTA_EXCEEDED", "", false},
+		{"unauthenticated", fmt.Errorf("%w: no bearer token", ErrUnauthenticated), 401, codes.Unauthenticated, "UNAUTHENTICATED", "", false},
+		{"forbidden", fmt.Errorf("tenant usage: %w: the admin role is needed", jobs.ErrForbidden), 403, codes.PermissionDenied, "PERMISSION_DENIED", "", false},
 		{"unavailable", fmt.Errorf("redis 10.0.0.7:6379: %w", jobs.ErrUnavailable), 503, codes.Unavailable, "UNAVAILABLE", "", true},
 		{"deadline", fmt.Errorf("query: %w", context.DeadlineExceeded), 504, codes.DeadlineExceeded, "DEADLINE_EXCEEDED", "", true},
 		{"cancelled", fmt.Errorf("query: %w", context.Canceled), 499, codes.Canceled, "CANCELLED", "", true},
@@ -160,5 +163,14 @@ func TestCodeName(t *testing.T) {
 		if got := CodeName(c); got != want {
 			t.Errorf("CodeName(%v) = %s, want %s", c, got, want)
 		}
+	}
+}
+
+func TestWriteHTTP(t *testing.T) {
+	rec := httptest.NewRecorder()
+	Map(fmt.Errorf("%w: no bearer token", ErrUnauthenticated)).WriteHTTP(rec)
+	want := `{"error":{"status":401,"code":"UNAUTHENTICATED","reason":"UNAUTHENTICATED","message":"unauthenticated: no bearer token","field_violations":[]}}` + "\n"
+	if rec.Code != 401 || rec.Body.String() != want || rec.Header().Get("Content-Type") != "application/json" {
+		t.Errorf("WriteHTTP: %d %s %q, want 401 application/json %q", rec.Code, rec.Header().Get("Content-Type"), rec.Body.String(), want)
 	}
 }

@@ -63,6 +63,18 @@ type Options struct {
 	HealthInterval time.Duration
 	// MaxMessageBytes bounds received messages; default DefaultMaxMessageBytes.
 	MaxMessageBytes int
+	// Auth, when set, authenticates every call after metrics and panic
+	// recovery (api/auth's Authenticator): it attaches the caller's
+	// principal or answers UNAUTHENTICATED or PERMISSION_DENIED.
+	Auth Authenticator
+	// Admin, when set, is registered as belief.v1.AdminService (api/auth's Admin).
+	Admin beliefv1.AdminServiceServer
+}
+
+// Authenticator supplies the interceptors that authenticate calls.
+type Authenticator interface {
+	UnaryInterceptor() grpc.UnaryServerInterceptor
+	StreamInterceptor() grpc.StreamServerInterceptor
 }
 
 func (o Options) withDefaults() Options {
@@ -82,7 +94,8 @@ func (o Options) withDefaults() Options {
 }
 
 // ServerOptions returns the options for grpc.NewServer: panic recovery,
-// metrics (when opts.Metrics is set) and the message size limit.
+// metrics (when opts.Metrics is set), authentication (when opts.Auth is
+// set) and the message size limit.
 func ServerOptions(opts Options) []grpc.ServerOption {
 	opts = opts.withDefaults()
 	unary := []grpc.UnaryServerInterceptor{}
@@ -93,6 +106,10 @@ func ServerOptions(opts Options) []grpc.ServerOption {
 	}
 	unary = append(unary, recoverUnary(opts.Logger))
 	stream = append(stream, recoverStream(opts.Logger))
+	if opts.Auth != nil {
+		unary = append(unary, opts.Auth.UnaryInterceptor())
+		stream = append(stream, opts.Auth.StreamInterceptor())
+	}
 	return []grpc.ServerOption{
 		grpc.ChainUnaryInterceptor(unary...),
 		grpc.ChainStreamInterceptor(stream...),
@@ -130,14 +147,17 @@ func New(svc Service, opts Options) *Server {
 	return s
 }
 
-// Register creates a Server over svc and registers the three services,
-// health and reflection on gs. Health reports NOT_SERVING until RunHealth
+// Register creates a Server over svc and registers the three services
+// (and opts.Admin as AdminService when set), health and reflection on gs. Health reports NOT_SERVING until RunHealth
 // has seen the service ready.
 func Register(gs *grpc.Server, svc Service, opts Options) *Server {
 	s := New(svc, opts)
 	beliefv1.RegisterModelServiceServer(gs, s)
 	beliefv1.RegisterJobServiceServer(gs, s)
 	beliefv1.RegisterQueryServiceServer(gs, s)
+	if opts.Admin != nil {
+		beliefv1.RegisterAdminServiceServer(gs, opts.Admin)
+	}
 	healthpb.RegisterHealthServer(gs, s.health)
 	reflection.Register(gs)
 	return s

@@ -20,6 +20,7 @@ import (
 	"github.com/beliefd/beliefd/api"
 	"github.com/beliefd/beliefd/api/errmap"
 	"github.com/beliefd/beliefd/api/metrics"
+	"github.com/beliefd/beliefd/api/web"
 	"github.com/beliefd/beliefd/service/model"
 	"google.golang.org/grpc/codes"
 )
@@ -61,6 +62,14 @@ type Options struct {
 	Heartbeat time.Duration
 	// ReadyTimeout bounds the readiness check; default DefaultReadyTimeout.
 	ReadyTimeout time.Duration
+	// Auth, when set, wraps every route inside the metrics and panic
+	// recovery (api/auth's Authenticator.HTTP): it authenticates and
+	// attaches the caller's principal, or answers 401 or 403.
+	Auth func(http.Handler) http.Handler
+	// Admin, when set, serves GET /v1/admin/tenants (api/auth's Admin).
+	Admin http.Handler
+	// Standing, when set, serves /v1/standing-queries (standing.go).
+	Standing api.StandingService
 }
 
 func (o Options) withDefaults() Options {
@@ -120,6 +129,12 @@ func New(svc Service, opts Options) http.Handler {
 		{"/healthz", []route{{"GET", h.healthz}}},
 		{"/readyz", []route{{"GET", h.readyz}}},
 	}
+	if opts.Admin != nil {
+		paths = append(paths, struct {
+			path   string
+			routes []route
+		}{"/v1/admin/tenants", []route{{"GET", opts.Admin.ServeHTTP}}})
+	}
 	if opts.MetricsHandler != nil {
 		paths = append(paths, struct {
 			path   string
@@ -139,13 +154,24 @@ func New(svc Service, opts Options) http.Handler {
 		// Every other method on a known path: 405 in the error shape.
 		mux.Handle(p.path, h.wrap(p.path, h.methodNotAllowed(strings.Join(allowed, ", "))))
 	}
+	// The web page at / and its files under web.Prefix (api/web).
+	page := web.Handler(http.HandlerFunc(h.notFound))
+	mux.Handle("GET /{$}", h.wrap("GET /", page.ServeHTTP))
+	mux.Handle("GET "+web.Prefix, h.wrap("GET "+web.Prefix, page.ServeHTTP))
+	if opts.Standing != nil {
+		h.routeStanding(mux, opts.Standing)
+	}
 	mux.Handle("/", h.wrap("unmatched", h.notFound))
 	return mux
 }
 
 // wrap adds panic recovery, a debug request line and, when configured,
-// metrics labelled with the route pattern.
+// authentication and metrics labelled with the route pattern.
 func (h *handler) wrap(route string, fn http.HandlerFunc) http.Handler {
+	var inner http.Handler = fn
+	if h.opts.Auth != nil {
+		inner = h.opts.Auth(inner)
+	}
 	var next http.Handler = http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
 		start := time.Now()
 		rw := &recorder{ResponseWriter: w}
@@ -164,7 +190,7 @@ func (h *handler) wrap(route string, fn http.HandlerFunc) http.Handler {
 			}
 			h.log.Debug("http: request", "method", r.Method, "route", route, "status", rw.status, "seconds", time.Since(start).Seconds())
 		}()
-		fn(rw, r)
+		inner.ServeHTTP(rw, r)
 	})
 	if h.opts.Metrics != nil {
 		next = h.opts.Metrics.HTTP(route, next)

@@ -33,6 +33,7 @@ type jobInfo struct {
 	ResultAt       time.Time      `json:"result_at,omitzero"`
 	Error          string         `json:"error,omitempty"`
 	IdempotencyKey string         `json:"idempotency_key,omitempty"`
+	Tenant         string         `json:"tenant,omitempty"`
 	CreatedAt      time.Time      `json:"created_at"`
 	StartedAt      time.Time      `json:"started_at,omitzero"`
 	UpdatedAt      time.Time      `json:"updated_at"`
@@ -44,7 +45,7 @@ func newJobInfo(j *jobs.Job) jobInfo {
 	return jobInfo{
 		ID: j.ID, State: j.State, Priority: j.Priority.String(), Model: j.Model, Query: j.Query,
 		Method: j.Method, Seed: j.Seed, Blocks: j.Blocks, MergedBlocks: j.MergedBlocks, ResultAt: j.ResultAt,
-		Error: j.Error, IdempotencyKey: j.IdempotencyKey,
+		Error: j.Error, IdempotencyKey: j.IdempotencyKey, Tenant: j.Tenant,
 		CreatedAt: j.CreatedAt, StartedAt: j.StartedAt, UpdatedAt: j.UpdatedAt, FinishedAt: j.FinishedAt, Deadline: j.Deadline,
 	}
 }

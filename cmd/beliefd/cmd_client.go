@@ -2,10 +2,13 @@ package main
 
 import (
 	"context"
+	"crypto/tls"
+	"crypto/x509"
 	"errors"
 	"flag"
 	"fmt"
 	"io"
+	"net"
 	"os"
 	"strings"
 	"text/tabwriter"
@@ -13,6 +16,8 @@ import (
 
 	"google.golang.org/genproto/googleapis/rpc/errdetails"
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/credentials"
 	"google.golang.org/grpc/credentials/insecure"
 	"google.golang.org/grpc/status"
 
@@ -37,13 +42,96 @@ func serverFlag(fs *flag.FlagSet) *string {
 	return fs.String("server", def, "gRPC address of a running beliefd (env BELIEFD_SERVER)")
 }
 
+// endpoint is where and how a client command reaches a server: the
+// address, the bearer token and TLS.
+type endpoint struct {
+	server, token, ca *string
+	tls               *bool
+}
+
+// envOr is the value of an environment variable, or def.
+func envOr(name, def string) string {
+	if v, ok := os.LookupEnv(name); ok && v != "" {
+		return v
+	}
+	return def
+}
+
+// endpointFlags registers --server, --token, --ca and --tls.
+func endpointFlags(fs *flag.FlagSet) *endpoint {
+	e := &endpoint{server: serverFlag(fs)}
+	e.token = fs.String("token", envOr("BELIEFD_TOKEN", ""), "bearer token of a server that requires tokens (env BELIEFD_TOKEN; prefer the variable: flags show in process lists)")
+	e.ca = fs.String("ca", envOr("BELIEFD_CA", ""), "PEM file of the certificate authority that signed the server's TLS certificate; connects with TLS (env BELIEFD_CA)")
+	tlsDef := false
+	if v := envOr("BELIEFD_TLS", ""); v == "1" || strings.EqualFold(v, "true") {
+		tlsDef = true
+	}
+	e.tls = fs.Bool("tls", tlsDef, "connect with TLS, trusting the system's certificate authorities (env BELIEFD_TLS)")
+	return e
+}
+
+func (e *endpoint) dial() (*client, error) { return dialWith(*e.server, *e.token, *e.ca, *e.tls) }
+
+// dial connects to addr with the token and TLS settings of the
+// environment (BELIEFD_TOKEN, BELIEFD_CA, BELIEFD_TLS).
 func dial(addr string) (*client, error) {
-	conn, err := grpc.NewClient(addr, grpc.WithTransportCredentials(insecure.NewCredentials()))
+	v := envOr("BELIEFD_TLS", "")
+	return dialWith(addr, envOr("BELIEFD_TOKEN", ""), envOr("BELIEFD_CA", ""), v == "1" || strings.EqualFold(v, "true"))
+}
+
+// dialWith connects to addr: with TLS when ca is given or useTLS is set,
+// sending token with every call. A token goes over an unencrypted
+// connection only to a loopback address.
+func dialWith(addr, token, ca string, useTLS bool) (*client, error) {
+	creds := insecure.NewCredentials()
+	switch {
+	case ca != "":
+		pem, err := os.ReadFile(ca)
+		if err != nil {
+			return nil, fmt.Errorf("%w: --ca: %v", errUsage, err)
+		}
+		pool := x509.NewCertPool()
+		if !pool.AppendCertsFromPEM(pem) {
+			return nil, fmt.Errorf("%w: --ca %s holds no PEM certificate", errUsage, ca)
+		}
+		creds = credentials.NewTLS(&tls.Config{RootCAs: pool, MinVersion: tls.VersionTLS12})
+	case useTLS:
+		creds = credentials.NewTLS(&tls.Config{MinVersion: tls.VersionTLS12})
+	}
+	opts := []grpc.DialOption{grpc.WithTransportCredentials(creds)}
+	if token != "" {
+		if ca == "" && !useTLS && !loopbackTarget(addr) {
+			return nil, fmt.Errorf("%w: a token would cross the network to %s unencrypted: connect with TLS (--ca FILE or --tls)", errUsage, addr)
+		}
+		opts = append(opts, grpc.WithPerRPCCredentials(bearer(token)))
+	}
+	conn, err := grpc.NewClient(addr, opts...)
 	if err != nil {
 		return nil, fmt.Errorf("%w: --server %q: %v", errUsage, addr, err)
 	}
 	return &client{conn: conn, models: beliefv1.NewModelServiceClient(conn), jobs: beliefv1.NewJobServiceClient(conn)}, nil
 }
+
+// loopbackTarget reports whether a gRPC target HOST:PORT is on this machine.
+func loopbackTarget(addr string) bool {
+	host, _, err := net.SplitHostPort(strings.TrimPrefix(addr, "dns:///"))
+	if err != nil {
+		return false
+	}
+	ip := net.ParseIP(host)
+	return host == "localhost" || (ip != nil && ip.IsLoopback())
+}
+
+// bearer sends a token with every call.
+type bearer string
+
+func (b bearer) GetRequestMetadata(context.Context, ...string) (map[string]string, error) {
+	return map[string]string{"authorization": "Bearer " + string(b)}, nil
+}
+
+// RequireTransportSecurity is false: dialWith sends a token in the clear
+// to loopback addresses only.
+func (b bearer) RequireTransportSecurity() bool { return false }
 
 // rpcError turns a gRPC status into a message a user can act on, with the
 // fields at fault.
@@ -53,8 +141,11 @@ func rpcError(addr string, err error) error {
 		return err
 	}
 	msg := st.Message()
-	if st.Code().String() == "Unavailable" {
-		msg = fmt.Sprintf("cannot reach beliefd at %s (is 'beliefd serve' running? set --server): %s", addr, st.Message())
+	switch st.Code() {
+	case codes.Unavailable:
+		msg = fmt.Sprintf("cannot reach beliefd at %s (is 'beliefd serve' running? set --server; --ca or --tls for a server with TLS): %s", addr, st.Message())
+	case codes.Unauthenticated:
+		msg += " (give the token with --token or BELIEFD_TOKEN)"
 	}
 	var b strings.Builder
 	b.WriteString(msg)
@@ -109,7 +200,8 @@ func printJob(w io.Writer, j *jobs.Job, net *model.Network, asJSON bool) error {
 
 func cmdSubmit(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("submit", "submit --model NAME[@VERSION] [flags]", stdout)
-	server := serverFlag(fs)
+	ep := endpointFlags(fs)
+	server := ep.server
 	modelRef := fs.String("model", "", "name (or name@version) of a model stored on the server")
 	priority := fs.String("priority", "normal", "low, normal or high")
 	idem := fs.String("idempotency-key", "", "submitting twice with the same key returns the first job")
@@ -130,7 +222,7 @@ func cmdSubmit(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err := q.Validate(); err != nil {
 		return fmt.Errorf("%w: %v", errUsage, err)
 	}
-	c, err := dial(*server)
+	c, err := ep.dial()
 	if err != nil {
 		return err
 	}
@@ -210,8 +302,9 @@ func (c *client) follow(ctx context.Context, server, id string, stdout, stderr i
 
 // oneJobCommand parses "COMMAND [flags] ID".
 func oneJobCommand(name string, args []string, stdout io.Writer) (*client, string, string, *bool, error) {
-	fs := newFlagSet(name, name+" [--server ADDR] [--json] JOB_ID", stdout)
-	server := serverFlag(fs)
+	fs := newFlagSet(name, name+" [--server ADDR] [--token T] [--json] JOB_ID", stdout)
+	ep := endpointFlags(fs)
+	server := ep.server
 	asJSON := fs.Bool("json", false, "print the result document as JSON")
 	if err := parseFlags(fs, args); err != nil {
 		return nil, "", "", nil, err
@@ -219,7 +312,7 @@ func oneJobCommand(name string, args []string, stdout io.Writer) (*client, strin
 	if fs.NArg() != 1 {
 		return nil, "", "", nil, fmt.Errorf("%w: give one job ID (list them with 'beliefd jobs')", errUsage)
 	}
-	c, err := dial(*server)
+	c, err := ep.dial()
 	if err != nil {
 		return nil, "", "", nil, err
 	}
@@ -267,13 +360,14 @@ func cmdCancel(ctx context.Context, args []string, stdout, _ io.Writer) error {
 }
 
 func cmdJobs(ctx context.Context, args []string, stdout, _ io.Writer) error {
-	fs := newFlagSet("jobs", "jobs [--server ADDR] [--limit N]", stdout)
-	server := serverFlag(fs)
+	fs := newFlagSet("jobs", "jobs [--server ADDR] [--token T] [--limit N]", stdout)
+	ep := endpointFlags(fs)
+	server := ep.server
 	limit := fs.Int("limit", 20, "how many of the newest jobs to list")
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
-	c, err := dial(*server)
+	c, err := ep.dial()
 	if err != nil {
 		return err
 	}
@@ -296,8 +390,9 @@ func cmdJobs(ctx context.Context, args []string, stdout, _ io.Writer) error {
 }
 
 func cmdModels(ctx context.Context, args []string, stdout, _ io.Writer) error {
-	fs := newFlagSet("models", "models [--server ADDR] [list | put FILE | get NAME[@VERSION] | delete NAME]", stdout)
-	server := serverFlag(fs)
+	fs := newFlagSet("models", "models [--server ADDR] [--token T] [list | put FILE | get NAME[@VERSION] | delete NAME]", stdout)
+	ep := endpointFlags(fs)
+	server := ep.server
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
@@ -317,7 +412,7 @@ func cmdModels(ctx context.Context, args []string, stdout, _ io.Writer) error {
 	if len(rest) != n {
 		return fmt.Errorf("%w: models %s takes %d argument(s)", errUsage, verb, n)
 	}
-	c, err := dial(*server)
+	c, err := ep.dial()
 	if err != nil {
 		return err
 	}

@@ -24,6 +24,7 @@ type serverConfig struct {
 	Workers         int           // --workers, BELIEFD_WORKERS
 	Preload         bool          // --preload, BELIEFD_PRELOAD
 	MaxUnfinished   int           // --max-jobs, BELIEFD_MAX_JOBS
+	MaxStanding     int           // --max-standing-queries, BELIEFD_MAX_STANDING_QUERIES (serve only)
 	Retention       time.Duration // --retention, BELIEFD_RETENTION
 	MaxJobTime      time.Duration // --max-job-time, BELIEFD_MAX_JOB_TIME
 	ShutdownTimeout time.Duration // --shutdown-timeout, BELIEFD_SHUTDOWN_TIMEOUT
@@ -32,14 +33,27 @@ type serverConfig struct {
 	ExactLimit      int           // --exact-limit, BELIEFD_EXACT_LIMIT
 	LogFormat       string        // --log-format, BELIEFD_LOG_FORMAT: text or json
 	LogLevel        string        // --log-level, BELIEFD_LOG_LEVEL: debug, info, warn, error
+
+	// Tenants and tokens (api/auth): from a file or a Redis key, re-read
+	// every TenantsReload; neither leaves the API open.
+	TenantsFile     string        // --tenants-file, BELIEFD_TENANTS_FILE
+	TenantsRedisKey string        // --tenants-redis-key, BELIEFD_TENANTS_REDIS_KEY (on --redis)
+	TenantsReload   time.Duration // --tenants-reload, BELIEFD_TENANTS_RELOAD
+	AllowOpenAccess bool          // --allow-open-access, BELIEFD_ALLOW_OPEN_ACCESS (serve only)
+	TLSCert         string        // --tls-cert, BELIEFD_TLS_CERT (serve only)
+	TLSKey          string        // --tls-key, BELIEFD_TLS_KEY (serve only)
 }
 
 // bindServerFlags registers the flags of cfg on fs. api selects the flags
 // of the API process (serve) as opposed to the worker process.
 func bindServerFlags(fs *flag.FlagSet, cfg *serverConfig, api bool) {
 	if api {
-		fs.StringVar(&cfg.HTTPAddr, "http-addr", ":8080", "HTTP listen address (JSON API, events, metrics, health)")
-		fs.StringVar(&cfg.GRPCAddr, "grpc-addr", ":9090", "gRPC listen address")
+		fs.StringVar(&cfg.HTTPAddr, "http-addr", "127.0.0.1:8080", "HTTP listen address (JSON API, events, metrics, health); ':8080' for every interface")
+		fs.StringVar(&cfg.GRPCAddr, "grpc-addr", "127.0.0.1:9090", "gRPC listen address; ':9090' for every interface")
+		fs.BoolVar(&cfg.AllowOpenAccess, "allow-open-access", false, "serve a non-loopback address without tokens: every caller is the open tenant with the admin role")
+		fs.StringVar(&cfg.TLSCert, "tls-cert", "", "PEM certificate (chain) file: serve HTTPS and gRPC over TLS (with --tls-key)")
+		fs.StringVar(&cfg.TLSKey, "tls-key", "", "PEM private key file of --tls-cert")
+		fs.IntVar(&cfg.MaxStanding, "max-standing-queries", 100, "standing queries allowed (all tenants); each adds gauges to /metrics")
 		fs.BoolVar(&cfg.Preload, "preload", true, "load the example models at start when the store has none of that name")
 		fs.Int64Var(&cfg.MaxBodyBytes, "max-body-bytes", 64<<20, "largest model document accepted over HTTP (JSON) or gRPC (message); queries are limited to 1 MiB")
 		fs.DurationVar(&cfg.ShutdownTimeout, "shutdown-timeout", 20*time.Second, "how long SIGTERM waits for requests and blocks in flight")
@@ -54,6 +68,9 @@ func bindServerFlags(fs *flag.FlagSet, cfg *serverConfig, api bool) {
 	fs.DurationVar(&cfg.MaxJobTime, "max-job-time", 10*time.Minute, "deadline of a job whose query gives no timeout")
 	fs.DurationVar(&cfg.LeaseTime, "lease-time", 15*time.Second, "lease on a block of samples; a worker renews it every third of it, and a block whose worker stops is taken up by another after the lease (plus a 2s clock margin)")
 	fs.IntVar(&cfg.ExactLimit, "exact-limit", 0, "largest junction tree (total table entries) exact inference may build (default 50,000,000)")
+	fs.StringVar(&cfg.TenantsFile, "tenants-file", "", "tenants document (JSON: tenants with quotas, hashes of tokens); without it or --tenants-redis-key the API is open")
+	fs.StringVar(&cfg.TenantsRedisKey, "tenants-redis-key", "", "Redis key (on --redis) holding the tenants document, instead of --tenants-file")
+	fs.DurationVar(&cfg.TenantsReload, "tenants-reload", 10*time.Second, "how often the tenants document is read again")
 	fs.StringVar(&cfg.LogFormat, "log-format", "text", "log format: text or json")
 	fs.StringVar(&cfg.LogLevel, "log-level", "info", "log level: debug, info, warn or error")
 }
@@ -95,6 +112,16 @@ func (c *serverConfig) Validate(api bool) error {
 		if c.MaxBodyBytes < 1024 || c.MaxBodyBytes > 1<<30 {
 			return bad("--max-body-bytes %d: want 1024 to 1073741824", c.MaxBodyBytes)
 		}
+		if (c.TLSCert == "") != (c.TLSKey == "") {
+			return bad("--tls-cert and --tls-key go together: give both or neither")
+		}
+		if !c.tenantsConfigured() && !c.AllowOpenAccess {
+			for _, a := range []struct{ name, v string }{{"--http-addr", c.HTTPAddr}, {"--grpc-addr", c.GRPCAddr}} {
+				if !loopbackAddr(a.v) {
+					return bad("%s %s is not a loopback address and no tokens are configured: give --tenants-file or --tenants-redis-key, or --allow-open-access to serve every caller without a token", a.name, a.v)
+				}
+			}
+		}
 	} else {
 		if c.Redis == "" {
 			return bad("--redis is required: a worker process takes its work from Redis (or run 'beliefd serve', which has its own workers)")
@@ -108,6 +135,15 @@ func (c *serverConfig) Validate(api bool) error {
 			return bad("--workers %d: a worker process needs at least 1", c.Workers)
 		}
 	}
+	if c.TenantsFile != "" && c.TenantsRedisKey != "" {
+		return bad("give --tenants-file or --tenants-redis-key, not both")
+	}
+	if c.TenantsRedisKey != "" && c.Redis == "" {
+		return bad("--tenants-redis-key %q needs --redis", c.TenantsRedisKey)
+	}
+	if c.TenantsReload < time.Second {
+		return bad("--tenants-reload %s: want at least 1s", c.TenantsReload)
+	}
 	if c.Redis != "" {
 		u, err := url.Parse(c.Redis)
 		if err != nil || (u.Scheme != "redis" && u.Scheme != "rediss") || u.Host == "" {
@@ -119,6 +155,8 @@ func (c *serverConfig) Validate(api bool) error {
 		return bad("--workers %d: want 0 or more", c.Workers)
 	case c.MaxUnfinished < 1:
 		return bad("--max-jobs %d: want at least 1", c.MaxUnfinished)
+	case api && (c.MaxStanding < 1 || c.MaxStanding > 10000):
+		return bad("--max-standing-queries %d: want 1 to 10000", c.MaxStanding)
 	case c.Retention < time.Second:
 		return bad("--retention %s: want at least 1s", c.Retention)
 	case c.MaxJobTime < time.Second:
@@ -134,6 +172,25 @@ func (c *serverConfig) Validate(api bool) error {
 		return err
 	}
 	return nil
+}
+
+// tenantsConfigured reports whether a tenants document is configured.
+func (c *serverConfig) tenantsConfigured() bool {
+	return c.TenantsFile != "" || c.TenantsRedisKey != ""
+}
+
+// loopbackAddr reports whether a listen address HOST:PORT binds a
+// loopback address only (an empty host binds every interface).
+func loopbackAddr(addr string) bool {
+	host, _, err := net.SplitHostPort(addr)
+	if err != nil {
+		return false
+	}
+	if host == "localhost" {
+		return true
+	}
+	ip := net.ParseIP(host)
+	return ip != nil && ip.IsLoopback()
 }
 
 func (c *serverConfig) logger(w *os.File) (*slog.Logger, error) {

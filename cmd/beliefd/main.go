@@ -49,6 +49,9 @@ func commands() []command {
 		{"cancel", "cancel a job", cmdCancel},
 		{"jobs", "list the newest jobs", cmdJobs},
 		{"models", "list, store, print or delete the models of a running server", cmdModels},
+		{"standing", "register standing queries, update their evidence, show their latest posteriors", cmdStanding},
+		{"token", "mint an API token for a tenant and print its entry for the tenants document", cmdToken},
+		{"tenants", "list the tenants with their unfinished jobs and quotas (admin token)", cmdTenants},
 	}
 }
 

@@ -116,7 +116,9 @@ type Job struct {
 	// How long the record is kept after the job finishes.
 	Retention *durationpb.Duration `protobuf:"bytes,21,opt,name=retention,proto3" json:"retention,omitempty"`
 	// When result was last written; absent before the first.
-	ResultAt      *timestamppb.Timestamp `protobuf:"bytes,22,opt,name=result_at,json=resultAt,proto3" json:"result_at,omitempty"`
+	ResultAt *timestamppb.Timestamp `protobuf:"bytes,22,opt,name=result_at,json=resultAt,proto3" json:"result_at,omitempty"`
+	// The tenant that owns the job; empty for the open tenant.
+	Tenant        string `protobuf:"bytes,23,opt,name=tenant,proto3" json:"tenant,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -305,6 +307,13 @@ func (x *Job) GetResultAt() *timestamppb.Timestamp {
 	return nil
 }
 
+func (x *Job) GetTenant() string {
+	if x != nil {
+		return x.Tenant
+	}
+	return ""
+}
+
 // EffectiveStop is a stopping rule after defaults: what the samplers obey.
 type EffectiveStop struct {
 	state      protoimpl.MessageState `protogen:"open.v1"`
@@ -387,7 +396,7 @@ var File_belief_v1_job_proto protoreflect.FileDescriptor
 
 const file_belief_v1_job_proto_rawDesc = "" +
 	"\n" +
-	"\x13belief/v1/job.proto\x12\tbelief.v1\x1a\x15belief/v1/model.proto\x1a\x15belief/v1/query.proto\x1a\x1egoogle/protobuf/duration.proto\x1a\x1fgoogle/protobuf/timestamp.proto\"\xa2\a\n" +
+	"\x13belief/v1/job.proto\x12\tbelief.v1\x1a\x15belief/v1/model.proto\x1a\x15belief/v1/query.proto\x1a\x1egoogle/protobuf/duration.proto\x1a\x1fgoogle/protobuf/timestamp.proto\"\xba\a\n" +
 	"\x03Job\x12\x0e\n" +
 	"\x02id\x18\x01 \x01(\tR\x02id\x12)\n" +
 	"\x05state\x18\x02 \x01(\x0e2\x13.belief.v1.JobStateR\x05state\x12/\n" +
@@ -416,7 +425,8 @@ const file_belief_v1_job_proto_rawDesc = "" +
 	"finishedAt\x126\n" +
 	"\bdeadline\x18\x14 \x01(\v2\x1a.google.protobuf.TimestampR\bdeadline\x127\n" +
 	"\tretention\x18\x15 \x01(\v2\x19.google.protobuf.DurationR\tretention\x127\n" +
-	"\tresult_at\x18\x16 \x01(\v2\x1a.google.protobuf.TimestampR\bresultAt\"\xb7\x01\n" +
+	"\tresult_at\x18\x16 \x01(\v2\x1a.google.protobuf.TimestampR\bresultAt\x12\x16\n" +
+	"\x06tenant\x18\x17 \x01(\tR\x06tenant\"\xb7\x01\n" +
 	"\rEffectiveStop\x12\x1f\n" +
 	"\vmax_samples\x18\x01 \x01(\x03R\n" +
 	"maxSamples\x123\n" +
