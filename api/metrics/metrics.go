@@ -20,7 +20,9 @@
 //	beliefd_grpc_requests_total{method,code}        counter; method is the full gRPC method
 //	beliefd_grpc_request_duration_seconds{method}   histogram
 //
-// plus the Go runtime and process collectors.
+// plus the Go runtime and process collectors. NewStanding (standing.go)
+// adds the gauges of standing queries, labelled by standing query: the
+// one exception to fixed label sets, bounded by the cap on their number.
 //
 // Sample rate: beliefd_sample_rate is a gauge over a rolling window of the
 // last 10 whole seconds of this process (fewer just after start), for a

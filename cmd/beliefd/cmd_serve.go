@@ -15,7 +15,9 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus"
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/credentials"
 
+	"github.com/beliefd/beliefd/api/auth"
 	"github.com/beliefd/beliefd/api/grpcapi"
 	"github.com/beliefd/beliefd/api/httpapi"
 	"github.com/beliefd/beliefd/api/metrics"
@@ -69,13 +71,18 @@ func redactURL(s string) string {
 	return s
 }
 
-func newService(store jobs.Store, cfg *serverConfig, log *slog.Logger) (*jobs.Service, *metrics.Metrics, *prometheus.Registry, error) {
+func newService(store jobs.Store, cfg *serverConfig, log *slog.Logger, tenants *auth.Registry) (*jobs.Service, *metrics.Metrics, *prometheus.Registry, error) {
 	reg := prometheus.NewRegistry()
 	m, err := metrics.New(reg, metrics.Options{Unfinished: store.Unfinished, Logger: log})
 	if err != nil {
 		return nil, nil, nil, err
 	}
+	var policy func(string) jobs.TenantPolicy
+	if tenants != nil {
+		policy = tenants.Policy
+	}
 	svc, err := jobs.NewService(store, jobs.Config{
+		TenantPolicy:    policy,
 		ExactMaxEntries: cfg.ExactLimit,
 		MaxUnfinished:   cfg.MaxUnfinished,
 		Retention:       cfg.Retention,
@@ -98,6 +105,11 @@ type process struct {
 	svc     *jobs.Service
 	metrics *metrics.Metrics
 	reg     *prometheus.Registry
+	// tenants is the tenants document in force (nil: the API is open),
+	// re-read from tenantsSrc until the process's context ends.
+	tenants    *auth.Registry
+	tenantsSrc *tenantsSource
+	stopFollow context.CancelFunc
 }
 
 // startProcess parses the settings, opens the store and builds the service;
@@ -108,16 +120,42 @@ func startProcess(ctx context.Context, name, synopsis string, args []string, std
 		return nil, err
 	}
 	log, _ := cfg.logger(os.Stderr)
+	tenants, tsrc, err := openTenants(ctx, cfg)
+	if err != nil {
+		return nil, err
+	}
 	store, backend, err := openStore(ctx, cfg, log)
 	if err != nil {
+		if tsrc != nil {
+			tsrc.close()
+		}
 		return nil, err
 	}
-	svc, m, reg, err := newService(store, cfg, log)
+	svc, m, reg, err := newService(store, cfg, log, tenants)
 	if err != nil {
 		store.Close()
+		if tsrc != nil {
+			tsrc.close()
+		}
 		return nil, err
 	}
-	return &process{cfg: cfg, log: log, store: store, backend: backend, svc: svc, metrics: m, reg: reg}, nil
+	p := &process{cfg: cfg, log: log, store: store, backend: backend, svc: svc, metrics: m, reg: reg, tenants: tenants, tenantsSrc: tsrc, stopFollow: func() {}}
+	if tsrc != nil {
+		fctx, stop := context.WithCancel(ctx)
+		done := make(chan struct{})
+		go func() { defer close(done); tenants.Follow(fctx, tsrc.fetch, cfg.TenantsReload, log) }()
+		p.stopFollow = func() { stop(); <-done }
+	}
+	return p, nil
+}
+
+// close releases the store and the tenants source.
+func (p *process) close() {
+	p.stopFollow()
+	p.store.Close()
+	if p.tenantsSrc != nil {
+		p.tenantsSrc.close()
+	}
 }
 
 func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -125,14 +163,26 @@ func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	if err != nil {
 		return err
 	}
-	defer p.store.Close()
+	defer p.close()
 	cfg, log, store, backend, svc, m, reg := p.cfg, p.log, p.store, p.backend, p.svc, p.metrics, p.reg
 	var preloaded []string
 	if cfg.Preload {
-		if preloaded, err = preload(ctx, svc); err != nil {
+		if preloaded, err = preload(ctx, svc, p.tenants); err != nil {
 			return err
 		}
 	}
+	sq, err := openStanding(ctx, cfg, svc, reg, log)
+	if err != nil {
+		return err
+	}
+	defer sq.close()
+	serverTLS, err := loadServerTLS(cfg)
+	if err != nil {
+		return err
+	}
+	authn := auth.New(p.tenants, log)
+	admin := auth.NewAdmin(svc, authn, log)
+	logAccess(log, cfg, p.tenants, p.tenantsSrc, serverTLS != nil)
 
 	httpLn, err := net.Listen("tcp", cfg.HTTPAddr)
 	if err != nil {
@@ -144,16 +194,23 @@ func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		return fmt.Errorf("--grpc-addr %s: %w", cfg.GRPCAddr, err)
 	}
 	hs := &http.Server{
-		Handler:           httpapi.New(svc, httpapi.Options{Logger: log, Metrics: m, MetricsHandler: metrics.Handler(reg), MaxModelBytes: cfg.MaxBodyBytes}),
+		Handler: httpapi.New(svc, httpapi.Options{Logger: log, Metrics: m, MetricsHandler: metrics.Handler(reg), MaxModelBytes: cfg.MaxBodyBytes,
+			Auth: authn.HTTP, Admin: admin, Standing: sq.svc}),
+		TLSConfig:         serverTLS,
 		ReadHeaderTimeout: 10 * time.Second,
 		ReadTimeout:       time.Minute,
 		IdleTimeout:       2 * time.Minute,
 	}
 	// A model message carries the same content as its JSON document, in
 	// fewer bytes; the same limit bounds both.
-	gopts := grpcapi.Options{Logger: log, Metrics: m, MaxMessageBytes: int(cfg.MaxBodyBytes)}
-	gs := grpc.NewServer(grpcapi.ServerOptions(gopts)...)
+	gopts := grpcapi.Options{Logger: log, Metrics: m, MaxMessageBytes: int(cfg.MaxBodyBytes), Auth: authn, Admin: admin}
+	sopts := grpcapi.ServerOptions(gopts)
+	if serverTLS != nil {
+		sopts = append(sopts, grpc.Creds(credentials.NewTLS(serverTLS)))
+	}
+	gs := grpc.NewServer(sopts...)
 	gsrv := grpcapi.Register(gs, svc, gopts)
+	grpcapi.RegisterStanding(gs, sq.svc, gopts)
 	healthCtx, stopHealth := context.WithCancel(context.Background())
 	defer stopHealth()
 	var wg sync.WaitGroup
@@ -162,7 +219,11 @@ func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 
 	errc := make(chan error, 3)
 	go func() {
-		if err := hs.Serve(httpLn); err != nil && !errors.Is(err, http.ErrServerClosed) {
+		serve := hs.Serve
+		if serverTLS != nil {
+			serve = func(ln net.Listener) error { return hs.ServeTLS(ln, "", "") }
+		}
+		if err := serve(httpLn); err != nil && !errors.Is(err, http.ErrServerClosed) {
 			errc <- fmt.Errorf("http: %w", err)
 		}
 	}()
@@ -192,6 +253,9 @@ func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	}
 
 	httpURL := "http://" + displayAddr(httpLn.Addr())
+	if serverTLS != nil {
+		httpURL = "https://" + displayAddr(httpLn.Addr())
+	}
 	fmt.Fprintf(stdout, "beliefd serving on %s (HTTP) and %s (gRPC), %s, %d sampling workers\n", httpURL, displayAddr(grpcLn.Addr()), backend, cfg.Workers)
 	if cfg.Redis == "" {
 		fmt.Fprintln(stdout, "  jobs and models live in this process's memory and end with it; use --redis for a shared, durable store")
@@ -199,6 +263,11 @@ func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	if len(preloaded) > 0 {
 		fmt.Fprintf(stdout, "  example models: %s\n", strings.Join(preloaded, ", "))
 		fmt.Fprintf(stdout, "  try:  curl -s %s/v1/query -d '{\"model\": \"%s\", \"evidence\": {\"alarm_checkout_5xx\": \"firing\"}, \"targets\": [\"bad_deploy\"]}'\n", httpURL, preloaded[0])
+	}
+	if p.tenants != nil {
+		fmt.Fprintf(stdout, "  tokens required (%s: %d tenants); send \"Authorization: Bearer TOKEN\"\n", p.tenantsSrc.where, len(p.tenants.Tenants()))
+	} else {
+		fmt.Fprintln(stdout, "  no tokens configured: open access, every caller is the open tenant")
 	}
 	fmt.Fprintf(stdout, "  metrics %s/metrics   health %s/healthz   readiness %s/readyz\n", httpURL, httpURL, httpURL)
 	fmt.Fprintln(stdout, "  "+shortCaution)
@@ -235,8 +304,24 @@ func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 // shortCaution is printed at start by the servers.
 const shortCaution = "model-based estimates support, and do not replace, the analyses that codes, standards and licensed practice require"
 
-// preload stores the example models whose names the store does not have.
-func preload(ctx context.Context, svc *jobs.Service) ([]string, error) {
+// preload stores the example models whose names the store does not have,
+// for the open tenant or, with tenants, for each tenant listed at start.
+func preload(ctx context.Context, svc *jobs.Service, tenants *auth.Registry) ([]string, error) {
+	if tenants == nil {
+		return preloadTenant(ctx, svc)
+	}
+	var names []string
+	for _, t := range tenants.Tenants() {
+		var err error
+		if names, err = preloadTenant(jobs.WithPrincipal(ctx, jobs.Principal{Tenant: t}), svc); err != nil {
+			return nil, fmt.Errorf("tenant %s: %w", t, err)
+		}
+	}
+	return names, nil
+}
+
+// preloadTenant stores the example models for the caller of ctx.
+func preloadTenant(ctx context.Context, svc *jobs.Service) ([]string, error) {
 	var names []string
 	for _, name := range examples.Names() {
 		if _, _, err := svc.GetModel(ctx, name); err == nil {
@@ -274,7 +359,7 @@ func cmdWorker(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err != nil {
 		return err
 	}
-	defer p.store.Close()
+	defer p.close()
 	cfg, log, store, backend, svc, reg := p.cfg, p.log, p.store, p.backend, p.svc, p.reg
 	var ms *http.Server
 	if cfg.MetricsAddr != "" {
