@@ -257,6 +257,7 @@ func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		httpURL = "https://" + displayAddr(httpLn.Addr())
 	}
 	fmt.Fprintf(stdout, "beliefd serving on %s (HTTP) and %s (gRPC), %s, %d sampling workers\n", httpURL, displayAddr(grpcLn.Addr()), backend, cfg.Workers)
+	fmt.Fprintf(stdout, "  page    %s/  (models, jobs and standing queries, updated live)\n", httpURL)
 	if cfg.Redis == "" {
 		fmt.Fprintln(stdout, "  jobs and models live in this process's memory and end with it; use --redis for a shared, durable store")
 	}
