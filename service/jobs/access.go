@@ -12,17 +12,19 @@ import (
 // watchPoll is how often Watch re-reads a job when no notification came.
 const watchPoll = time.Second
 
-// Get returns a job. Its Result (partial while the job runs) carries the
-// job's state.
+// Get returns a job of the caller's tenant (of any tenant for an admin).
+// Its Result (partial while the job runs) carries the job's state.
 func (s *Service) Get(ctx context.Context, id string) (*Job, error) {
 	j, err := s.store.GetJob(ctx, id)
+	j, err = scopeJob(ctx, "get job", id, j, err)
 	if err != nil {
-		return nil, fmt.Errorf("get job %q: %w", id, err)
+		return nil, err
 	}
 	return mirror(j), nil
 }
 
-// List returns jobs newest first, a page at a time. pageToken is "" for the
+// List returns the jobs of the caller's tenant (of every tenant for an
+// admin) newest first, a page at a time. pageToken is "" for the
 // first page, else the token the previous page returned; the returned token
 // is "" after the last page.
 func (s *Service) List(ctx context.Context, pageToken string, pageSize int) ([]*Job, string, error) {
@@ -31,7 +33,11 @@ func (s *Service) List(ctx context.Context, pageToken string, pageSize int) ([]*
 		return nil, "", fmt.Errorf("list jobs: %w", err)
 	}
 	size := pageSizeOf(pageSize)
-	js, err := s.store.ListJobs(ctx, after, size+1)
+	tenant := AllTenants
+	if p := principal(ctx); !p.Admin {
+		tenant = p.Tenant
+	}
+	js, err := s.store.ListJobs(ctx, tenant, after, size+1)
 	if err != nil {
 		return nil, "", fmt.Errorf("list jobs: %w", err)
 	}
@@ -53,8 +59,9 @@ func (s *Service) List(ctx context.Context, pageToken string, pageSize int) ([]*
 // returned unchanged.
 func (s *Service) Cancel(ctx context.Context, id string) (*Job, error) {
 	j, err := s.store.GetJob(ctx, id)
+	j, err = scopeJob(ctx, "cancel job", id, j, err)
 	if err != nil {
-		return nil, fmt.Errorf("cancel job %q: %w", id, err)
+		return nil, err
 	}
 	if j.State.Terminal() {
 		return mirror(j), nil
@@ -107,9 +114,10 @@ func (s *Service) Watch(ctx context.Context, id string) (<-chan *Job, error) {
 		sig, unsubscribe = nil, func() {}
 	}
 	j, err := s.store.GetJob(ctx, id)
+	j, err = scopeJob(ctx, "watch job", id, j, err)
 	if err != nil {
 		unsubscribe()
-		return nil, fmt.Errorf("watch job %q: %w", id, err)
+		return nil, err
 	}
 	out := make(chan *Job, 1)
 	send := func(j *Job) {

@@ -8,15 +8,21 @@
 //
 // Service.Submit resolves the query against its model (evidence, targets,
 // stopping rule, method; "auto" becomes exact inference when the junction
-// tree fits, likelihood weighting otherwise), draws a seed when none is
-// given and stores the job as queued. Forward, rejection and
-// likelihood-weighting jobs are cut into Blocks blocks of
-// sampling.DefaultBlockSize samples (the last may be shorter): block k draws
-// from the random stream (seed, k) only. Exact and Gibbs jobs are one unit,
-// block 0, run by infer.Runner.
+// tree fits, adaptive importance sampling when a pilot finds the evidence
+// unlikely or a target state rare, likelihood weighting otherwise), draws
+// a seed when none is given and stores the job as queued. Forward,
+// rejection, likelihood-weighting and adaptive importance sampling jobs are
+// cut into Blocks blocks of sampling.DefaultBlockSize samples (the last may
+// be shorter): block k draws from the random stream (seed, k) only. An
+// adaptive job's importance functions are learned once in each worker
+// process that runs its blocks, deterministically from the seed, and kept
+// with the job's plan (merge.go, adaptivePlan); the job record holds only
+// the merged statistics. Exact and Gibbs jobs are one unit, block 0, run by
+// infer.Runner.
 //
-// Workers call Service.RunOnce. It claims a block of the first claimable job
-// (higher priority first, then older) under a lease of Config.LeaseTime,
+// Workers call Service.RunOnce. It claims a block of a claimable job
+// (tenants take turns by fair share, fair.go; within a tenant higher
+// priority first, then older) under a lease of Config.LeaseTime,
 // never more than Config.LookAhead blocks beyond the merged prefix. The
 // first claim moves the job to running and sets its deadline (the query's
 // stop.timeout capped by Config.MaxJobTime, counted from then). While the

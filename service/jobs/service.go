@@ -34,6 +34,7 @@ type Service struct {
 
 	nets  lru[*model.Network] // compiled networks by model name and hash
 	plans lru[*plan]          // resolved jobs by job ID
+	fair  *fairQueue          // whose work RunOnce claims next (fair.go)
 
 	// hookUnit, when set by a test, runs in the goroutine of a work unit
 	// before it computes.
@@ -61,6 +62,7 @@ func NewService(store Store, cfg Config, obs Observer) (*Service, error) {
 		nets:   newLRU[*model.Network](64),
 		plans:  newLRU[*plan](256),
 	}
+	s.fair = newFairQueue(s.shareOf)
 	return s, nil
 }
 
@@ -96,9 +98,15 @@ func checkModelName(name string) error {
 }
 
 // PutModel validates and stores a model document (JSON) as the next
-// version of its name, unless the latest version has the same content
-// hash, in which case that version is returned with created == false.
+// version of its name in the caller's tenant, unless the latest version
+// has the same content hash, in which case that version is returned with
+// created == false. A document over the tenant's model-size quota fails
+// with ErrQuotaExceeded.
 func (s *Service) PutModel(ctx context.Context, doc []byte) (ModelInfo, bool, error) {
+	p := principal(ctx)
+	if err := s.checkModelQuota(p, len(doc)); err != nil {
+		return ModelInfo{}, false, fmt.Errorf("put model: %w", err)
+	}
 	if int64(len(doc)) > s.cfg.MaxModelBytes {
 		return ModelInfo{}, false, fmt.Errorf("put model: %w: document of %d bytes exceeds the limit of %d", model.ErrTooLarge, len(doc), s.cfg.MaxModelBytes)
 	}
@@ -113,15 +121,16 @@ func (s *Service) PutModel(ctx context.Context, doc []byte) (ModelInfo, bool, er
 	if err != nil {
 		return ModelInfo{}, false, fmt.Errorf("put model %q: %w", d.Name, err)
 	}
-	info := ModelInfo{Name: d.Name, Hash: net.Hash, Variables: len(net.Vars), Bytes: len(doc), CreatedAt: s.now()}
+	info := ModelInfo{Name: storeModelName(p.Tenant, d.Name), Hash: net.Hash, Variables: len(net.Vars), Bytes: len(doc), CreatedAt: s.now()}
 	stored, created, err := s.store.PutModel(ctx, info, doc)
 	if err != nil {
 		return ModelInfo{}, false, fmt.Errorf("put model %q: %w", d.Name, err)
 	}
 	s.nets.put(netKey(stored.Name, stored.Hash), net)
 	if created {
-		s.log.Info("model stored", "model", stored.Name, "version", stored.Version, "variables", stored.Variables, "bytes", stored.Bytes)
+		s.log.Info("model stored", "tenant", p.Tenant, "model", d.Name, "version", stored.Version, "variables", stored.Variables, "bytes", stored.Bytes)
 	}
+	stored.Name = d.Name
 	return stored, created, nil
 }
 
@@ -142,37 +151,70 @@ func ParseModelRef(ref string) (name string, version int, err error) {
 	return name, version, nil
 }
 
-// GetModel returns a stored model version and its document; ref is "name"
-// (the latest version) or "name@version".
+// GetModel returns a stored model version of the caller's tenant and its
+// document; ref is "name" (the latest version) or "name@version".
 func (s *Service) GetModel(ctx context.Context, ref string) (ModelInfo, []byte, error) {
 	name, version, err := ParseModelRef(ref)
 	if err != nil {
 		return ModelInfo{}, nil, fmt.Errorf("get model: %w", err)
 	}
-	info, doc, err := s.store.GetModel(ctx, name, version)
+	p := principal(ctx)
+	stored, ok := p.storeName(name)
+	if !ok {
+		return ModelInfo{}, nil, errModelNotFound("get model", ref)
+	}
+	info, doc, err := s.store.GetModel(ctx, stored, version)
+	if errors.Is(err, ErrNotFound) {
+		return ModelInfo{}, nil, errModelNotFound("get model", ref)
+	}
 	if err != nil {
 		return ModelInfo{}, nil, fmt.Errorf("get model %q: %w", ref, err)
 	}
+	info.Name = p.displayName(info.Name)
 	return info, doc, nil
 }
 
-// ListModels returns the latest version of each model, in name order, a
-// page at a time. pageToken is "" for the first page, else the token the
-// previous page returned; the returned token is "" after the last page.
+// ListModels returns the latest version of each model of the caller's
+// tenant (of every tenant for an admin), in name order, a page at a time.
+// pageToken is "" for the first page, else the token the previous page
+// returned; the returned token is "" after the last page.
 func (s *Service) ListModels(ctx context.Context, pageToken string, pageSize int) ([]ModelInfo, string, error) {
 	after, err := decodeToken(pageToken)
 	if err != nil {
 		return nil, "", fmt.Errorf("list models: %w", err)
+	}
+	p := principal(ctx)
+	// A member's models are one contiguous run of store names (scope.go);
+	// its page tokens hold names without the tenant.
+	switch {
+	case p.Admin:
+	case after != "":
+		after = storeModelName(p.Tenant, after)
+	case p.Tenant != "":
+		after = storeModelName(p.Tenant, "")
 	}
 	size := pageSizeOf(pageSize)
 	infos, err := s.store.ListModels(ctx, after, size+1)
 	if err != nil {
 		return nil, "", fmt.Errorf("list models: %w", err)
 	}
+	for i, info := range infos {
+		if owner, _ := modelOwner(info.Name); !p.visible(owner) {
+			infos = infos[:i]
+			break
+		}
+	}
 	next := ""
 	if len(infos) > size {
 		infos = infos[:size]
-		next = encodeToken(infos[size-1].Name)
+		next = infos[size-1].Name
+		if !p.Admin {
+			_, next = modelOwner(next)
+		}
+		next = encodeToken(next)
+	}
+	for i := range infos {
+		infos[i].Name = p.displayName(infos[i].Name)
 	}
 	return infos, next, nil
 }
@@ -180,10 +222,20 @@ func (s *Service) ListModels(ctx context.Context, pageToken string, pageSize int
 // DeleteModel removes every version of a model. Jobs already submitted on
 // it fail when a worker can no longer load it.
 func (s *Service) DeleteModel(ctx context.Context, name string) error {
-	if err := s.store.DeleteModel(ctx, name); err != nil {
+	p := principal(ctx)
+	stored, ok := p.storeName(name)
+	if !ok {
+		return errModelNotFound("delete model", name)
+	}
+	err := s.store.DeleteModel(ctx, stored)
+	if errors.Is(err, ErrNotFound) {
+		return errModelNotFound("delete model", name)
+	}
+	if err != nil {
 		return fmt.Errorf("delete model %q: %w", name, err)
 	}
-	s.log.Info("model deleted", "model", name)
+	owner, plain := modelOwner(stored)
+	s.log.Info("model deleted", "tenant", owner, "model", plain)
 	return nil
 }
 
@@ -213,17 +265,28 @@ func (s *Service) network(ctx context.Context, info ModelInfo) (*model.Network, 
 	return net, nil
 }
 
-// resolveModel looks up a model reference and compiles it.
+// resolveModel looks up a model reference of the caller and compiles it.
+// The info returned has the name as the caller gives it.
 func (s *Service) resolveModel(ctx context.Context, ref string) (ModelInfo, *model.Network, error) {
 	name, version, err := ParseModelRef(ref)
 	if err != nil {
 		return ModelInfo{}, nil, err
 	}
-	info, doc, err := s.store.GetModel(ctx, name, version)
+	p := principal(ctx)
+	stored, ok := p.storeName(name)
+	if !ok {
+		return ModelInfo{}, nil, errModelNotFound("model", ref)
+	}
+	info, doc, err := s.store.GetModel(ctx, stored, version)
+	if errors.Is(err, ErrNotFound) {
+		return ModelInfo{}, nil, errModelNotFound("model", ref)
+	}
 	if err != nil {
 		return ModelInfo{}, nil, fmt.Errorf("model %q: %w", ref, err)
 	}
-	if net, ok := s.nets.get(netKey(info.Name, info.Hash)); ok {
+	key := netKey(info.Name, info.Hash)
+	info.Name = p.displayName(info.Name)
+	if net, ok := s.nets.get(key); ok {
 		return info, net, nil
 	}
 	d, err := model.Decode(bytes.NewReader(doc), 0)
@@ -234,7 +297,7 @@ func (s *Service) resolveModel(ctx context.Context, ref string) (ModelInfo, *mod
 	if err != nil {
 		return ModelInfo{}, nil, fmt.Errorf("model %q: %w", ref, err)
 	}
-	s.nets.put(netKey(info.Name, info.Hash), net)
+	s.nets.put(key, net)
 	return info, net, nil
 }
 
@@ -249,6 +312,9 @@ func (s *Service) Query(ctx context.Context, q *infer.Query) (*infer.Result, err
 	}
 	qc := *q
 	if err := qc.Validate(); err != nil {
+		return nil, fmt.Errorf("query: %w", err)
+	}
+	if err := s.limitSamples(principal(ctx), &qc.Stop); err != nil {
 		return nil, fmt.Errorf("query: %w", err)
 	}
 	_, net, err := s.resolveModel(ctx, qc.Model)

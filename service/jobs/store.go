@@ -3,6 +3,7 @@ package jobs
 import (
 	"context"
 	"errors"
+	"fmt"
 	"time"
 )
 
@@ -64,34 +65,74 @@ type ModelStore interface {
 	DeleteModel(ctx context.Context, name string) error
 }
 
-// JobStore keeps job records.
+// AllTenants, given to ListJobs or UnfinishedOf as the tenant, means every
+// tenant's jobs (for admins). It can name no tenant: tenant names hold only
+// letters, digits, '.', '_' and '-' (CheckTenantName).
+const AllTenants = "*"
+
+// CreateLimits bound what CreateJob accepts. Zero fields mean no limit.
+type CreateLimits struct {
+	// MaxUnfinished bounds the queued and running jobs of all tenants
+	// together; beyond it CreateJob fails with ErrQueueFull.
+	MaxUnfinished int
+	// TenantMaxUnfinished bounds the queued and running jobs of the new
+	// job's tenant; beyond it CreateJob fails with an error that wraps
+	// ErrQuotaExceeded and names the quota and its value.
+	TenantMaxUnfinished int
+}
+
+// JobStore keeps job records. Every job belongs to one tenant (Job.Tenant,
+// "" for the open tenant), fixed when it is created.
 type JobStore interface {
 	// CreateJob stores a new job in state queued and makes it claimable.
-	// When j.IdempotencyKey was used by a job still kept, it returns that
-	// job and created == false. When maxUnfinished > 0 and that many jobs
-	// are queued or running, it returns ErrQueueFull and stores nothing.
-	CreateJob(ctx context.Context, j *Job, maxUnfinished int) (stored *Job, created bool, err error)
+	// When j.IdempotencyKey was used by a job of the same tenant still
+	// kept, it returns that job and created == false (keys of different
+	// tenants never meet). Otherwise, when the limits would be exceeded,
+	// it stores nothing and fails with ErrQuotaExceeded (j.Tenant's own
+	// bound, checked first) or ErrQueueFull (all tenants). j.Tenant must
+	// not be AllTenants.
+	CreateJob(ctx context.Context, j *Job, lim CreateLimits) (stored *Job, created bool, err error)
 	// GetJob returns a copy of the job record.
 	GetJob(ctx context.Context, id string) (*Job, error)
-	// ListJobs returns jobs newest first, starting after the job with ID
-	// `after` ("" for the newest), at most limit of them.
-	ListJobs(ctx context.Context, after string, limit int) ([]*Job, error)
+	// ListJobs returns the jobs of tenant (of every tenant for
+	// AllTenants) newest first, starting after the job with ID `after`
+	// ("" for the newest), at most limit of them (all when limit <= 0). A
+	// backend keeps an index per tenant: a page costs what it holds, not
+	// what other tenants have.
+	ListJobs(ctx context.Context, tenant, after string, limit int) ([]*Job, error)
 	// UpdateJob applies fn to the current record and stores the result
 	// atomically (compare-and-swap, retried on conflict; fn may run more
 	// than once and must not have side effects). If fn returns an error,
-	// nothing is stored and the error is returned. When the stored job
-	// reaches a terminal state it stops being claimable and its record
+	// nothing is stored and the error is returned. fn cannot change the
+	// job's ID or tenant. When the stored job reaches a terminal state it
+	// stops being claimable, stops counting as unfinished, and its record
 	// expires after its Retention.
 	UpdateJob(ctx context.Context, id string, fn func(*Job) error) (*Job, error)
-	// Unfinished counts queued and running jobs (queue depth).
+	// Unfinished counts queued and running jobs of all tenants (queue depth).
 	Unfinished(ctx context.Context) (queued, running int, err error)
+	// UnfinishedOf counts the queued and running jobs of one tenant (of
+	// all tenants for AllTenants).
+	UnfinishedOf(ctx context.Context, tenant string) (queued, running int, err error)
+}
+
+// Claimable is an unfinished job that may have work, as ClaimableJobs
+// lists it.
+type Claimable struct {
+	ID       string
+	Tenant   string
+	Priority Priority
 }
 
 // WorkQueue hands out the blocks of unfinished jobs under leases.
 type WorkQueue interface {
-	// ClaimableJobs lists unfinished jobs that may have work, highest
-	// priority first, oldest first within a priority.
-	ClaimableJobs(ctx context.Context, limit int) ([]string, error)
+	// ClaimableJobs lists unfinished jobs that may have work: for every
+	// tenant with unfinished jobs, its first limit jobs (all when limit
+	// <= 0) by priority, highest first, oldest first within a priority.
+	// Tenants follow one another in name order, each tenant's jobs in a
+	// run. Limiting per tenant keeps every tenant's work in view however
+	// much another tenant has queued; the order among tenants is the
+	// scheduler's business (fair.go).
+	ClaimableJobs(ctx context.Context, limit int) ([]Claimable, error)
 	// ClaimBlock leases a block of job jobID to worker until now+lease: a
 	// block whose lease expired (more than the backend's clock-skew margin
 	// ago) and that has no committed statistics, else the next block never
@@ -131,3 +172,14 @@ type Notifier interface {
 
 // TopicQueue is the notification topic for new or returned work.
 const TopicQueue = "queue"
+
+// TenantQuotaError is the error CreateJob returns when the tenant of the
+// new job has unfinished queued or running jobs and may have at most max:
+// it wraps ErrQuotaExceeded and names the quota, its value and the tenant.
+func TenantQuotaError(tenant string, unfinished, max int) error {
+	who := "the open tenant"
+	if tenant != "" {
+		who = fmt.Sprintf("tenant %q", tenant)
+	}
+	return fmt.Errorf("%w: max_unfinished of %s is %d; it has %d queued or running jobs", ErrQuotaExceeded, who, max, unfinished)
+}

@@ -34,21 +34,37 @@ func (k keys) model(name string) modelKeys {
 	return modelKeys{head: b, info: b + ":info", doc: b + ":doc"}
 }
 
-// Global keys share the hash tag {global}.
-func (k keys) models() string    { return k.p + ":{global}:models" }
-func (k keys) jobIndex() string  { return k.p + ":{global}:jobs" }
-func (k keys) seq() string       { return k.p + ":{global}:seq" }
-func (k keys) claimable() string { return k.p + ":{global}:claimable" }
-func (k keys) queued() string    { return k.p + ":{global}:queued" }
-func (k keys) running() string   { return k.p + ":{global}:running" }
-func (k keys) expiring() string  { return k.p + ":{global}:expiring" }
+// The indexes share the hash tag {global}. Scripts on that slot get its
+// prefix, global(), and name the keys themselves (see scripts.go), so the
+// names below must match the Lua prelude luaGlobal.
+func (k keys) global() string    { return k.p + ":{global}" }
+func (k keys) models() string    { return k.global() + ":models" }
+func (k keys) modelPuts() string { return k.global() + ":modelputs" }
+func (k keys) jobIndex() string  { return k.global() + ":jobs" }
+func (k keys) meta() string      { return k.global() + ":meta" }
+func (k keys) creating() string  { return k.global() + ":creating" }
+func (k keys) queued() string    { return k.global() + ":queued" }
+func (k keys) running() string   { return k.global() + ":running" }
+func (k keys) expiring() string  { return k.global() + ":expiring" }
+func (k keys) active() string    { return k.global() + ":active" }
+func (k keys) seq() string       { return k.global() + ":seq" }
+func (k keys) sweepLock() string { return k.global() + ":sweep" }
 
-// idem names the key of an idempotency key: its SHA-256, so that any
-// client-chosen string gives a short, safe key.
-func (k keys) idem(key string) string {
-	h := sha256.Sum256([]byte(key))
-	return k.p + ":{global}:idem:" + hex.EncodeToString(h[:])
+// tenant names a per-tenant index: kind is jobs, queued, running,
+// claimable or idem:SHA256.
+func (k keys) tenant(tenant, kind string) string {
+	return k.global() + ":t:" + tenant + ":" + kind
 }
+
+// idemSum is the SHA-256 of an idempotency key in hex: any client-chosen
+// string gives a short, safe key name.
+func idemSum(key string) string {
+	h := sha256.Sum256([]byte(key))
+	return hex.EncodeToString(h[:])
+}
+
+// idem names the key that holds the job ID of a tenant's idempotency key.
+func (k keys) idem(tenant, key string) string { return k.tenant(tenant, "idem:"+idemSum(key)) }
 
 // channel names the pub/sub channel of a topic.
 func (k keys) channel(topic string) string { return k.p + ":notify:" + topic }

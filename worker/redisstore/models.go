@@ -29,10 +29,20 @@ func (s *Store) PutModel(ctx context.Context, info jobs.ModelInfo, doc []byte) (
 	if err != nil {
 		return jobs.ModelInfo{}, false, fmt.Errorf("redisstore: put model %s: encode: %w", info.Name, err)
 	}
-	mk := s.k.model(info.Name)
-	res, err := putModelScript.Run(ctx, s.rdb, []string{mk.head, mk.info, mk.doc, s.k.models()},
-		info.Name, info.Hash, enc, doc, token()).Slice()
+	// Three steps, each on one slot (doc.go, "Steps across slots"):
+	// announce the put on {global}, store the version on {model:NAME},
+	// list the name on {global}.
+	mark, err := announceModelScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), info.Name, token()[:8]).Text()
 	if err != nil {
+		return jobs.ModelInfo{}, false, s.fail(ctx, "put model", err)
+	}
+	mk := s.k.model(info.Name)
+	res, err := putModelScript.Run(ctx, s.rdb, []string{mk.head, mk.info, mk.doc},
+		info.Hash, enc, doc, token()).Slice()
+	if err != nil {
+		return jobs.ModelInfo{}, false, s.fail(ctx, "put model", err)
+	}
+	if err := listModelScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), info.Name, mark).Err(); err != nil {
 		return jobs.ModelInfo{}, false, s.fail(ctx, "put model", err)
 	}
 	if len(res) != 3 {
@@ -185,15 +195,39 @@ func (s *Store) latestInfos(ctx context.Context, names []string) ([]jobs.ModelIn
 }
 
 // DeleteModel removes every version of a model; jobs.ErrNotFound when
-// there is none.
+// there is none. The versions go first, on {model:NAME}, then the name
+// leaves the index on {global}.
 func (s *Store) DeleteModel(ctx context.Context, name string) error {
 	mk := s.k.model(name)
-	n, err := deleteModelScript.Run(ctx, s.rdb, []string{mk.head, mk.info, mk.doc, s.k.models()}, name).Int()
+	n, err := deleteModelScript.Run(ctx, s.rdb, []string{mk.head, mk.info, mk.doc}).Int()
 	if err != nil {
 		return s.fail(ctx, "delete model", err)
+	}
+	if _, err := s.unlistModel(ctx, name); err != nil {
+		return err
 	}
 	if n == 0 {
 		return fmt.Errorf("redisstore: model %s: %w", name, jobs.ErrNotFound)
 	}
 	return nil
+}
+
+// unlistModel takes a name out of the index, then looks again: a model
+// stored meanwhile (a PutModel lists its name only after storing it) is
+// listed again. It reports whether the name stays out.
+func (s *Store) unlistModel(ctx context.Context, name string) (bool, error) {
+	if err := s.rdb.ZRem(ctx, s.k.models(), name).Err(); err != nil {
+		return false, s.fail(ctx, "unlist model", err)
+	}
+	n, err := s.rdb.Exists(ctx, s.k.model(name).head).Result()
+	if err != nil {
+		return false, s.fail(ctx, "unlist model", err)
+	}
+	if n == 0 {
+		return true, nil
+	}
+	if err := listModelScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), name, "").Err(); err != nil {
+		return false, s.fail(ctx, "unlist model", err)
+	}
+	return false, nil
 }

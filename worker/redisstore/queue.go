@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"strconv"
 	"time"
 
 	"github.com/redis/go-redis/v9"
@@ -14,16 +15,41 @@ import (
 // statsChunk bounds the fields read by one HMGET in BlockStats.
 const statsChunk = 256
 
-// ClaimableJobs lists unfinished jobs, highest priority first, oldest
-// first within a priority; all of them when limit <= 0.
-func (s *Store) ClaimableJobs(ctx context.Context, limit int) ([]string, error) {
-	stop := int64(limit) - 1 // limit <= 0: all of them
-	ids, err := s.rdb.ZRange(ctx, s.k.claimable(), 0, stop).Result()
+// ClaimableJobs lists, for every tenant with unfinished jobs, its first
+// limit jobs (all when limit <= 0), highest priority first, oldest first
+// within a priority; tenants in name order. One script on {global} reads
+// the tenants' queues.
+func (s *Store) ClaimableJobs(ctx context.Context, limit int) ([]jobs.Claimable, error) {
+	res, err := claimableJobsScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), max(limit, 0)).StringSlice()
 	if err != nil {
 		return nil, s.fail(ctx, "claimable jobs", err)
 	}
-	return ids, nil
+	var out []jobs.Claimable
+	for i := 0; i < len(res); {
+		if i+1 >= len(res) {
+			return nil, fmt.Errorf("redisstore: claimable jobs: truncated reply")
+		}
+		tenant := res[i]
+		n, err := strconv.Atoi(res[i+1])
+		if err != nil || n < 0 || i+2+2*n > len(res) {
+			return nil, fmt.Errorf("redisstore: claimable jobs: bad count %q for tenant %q", res[i+1], tenant)
+		}
+		for k := range n {
+			id, score := res[i+2+2*k], res[i+3+2*k]
+			sc, err := strconv.ParseFloat(score, 64)
+			if err != nil {
+				return nil, fmt.Errorf("redisstore: claimable jobs: job %s: bad score %q", id, score)
+			}
+			out = append(out, jobs.Claimable{ID: id, Tenant: tenant, Priority: jobs.Priority(2 - int64(sc)/claimScoreUnit)})
+		}
+		i += 2 + 2*n
+	}
+	return out, nil
 }
+
+// claimScoreUnit is the weight of a priority level in a claim score
+// (claim_score in scripts.go): 2^50.
+const claimScoreUnit = 1 << 50
 
 // leaseMillis turns a lease into whole milliseconds, at least one.
 func leaseMillis(op string, lease time.Duration) (int64, error) {

@@ -3,10 +3,16 @@ package redisstore
 import "github.com/redis/go-redis/v9"
 
 // The Lua scripts below run atomically on the server (EVALSHA, falling back
-// to EVAL after a restart empties the script cache). Times are read from
-// the server's clock (TIME) so that workers whose clocks disagree share
-// one notion of lease expiry. Every key a script touches is passed in
-// KEYS.
+// to EVAL after a restart empties the script cache). Each script touches
+// the keys of ONE hash slot, so that every script runs on Redis Cluster:
+// a job's keys ({job:ID}), a model's keys ({model:NAME}), or the indexes
+// ({global}). Scripts on a job or model pass every key in KEYS. Scripts on
+// {global} declare one key of it, P:{global}:meta, which routes them, and
+// name the others from the prefix P:{global} in ARGV[1], since which
+// tenant's indexes they touch depends on the data; Redis Cluster accepts
+// undeclared keys of the declared slot. Times are read from the server's
+// clock (TIME) so that workers whose clocks disagree share one notion of
+// lease expiry.
 
 // luaNow is prepended to scripts that need the server time in milliseconds.
 const luaNow = `
@@ -17,29 +23,293 @@ end
 local function unfinished(s) return s == 'queued' or s == 'running' end
 `
 
-// claimScore orders claimable jobs: higher priority first, then creation
-// order. Priorities are clamped to 0..2 by the caller; seq < 2^50.
-const luaScore = `
+// luaGlobal is prepended to the scripts on {global}: key names (keys.go
+// builds the same), the claim order, and the moves of a job between the
+// indexes. P:{global}:meta holds, for every job in the indexes, the
+// record revision the indexes reflect, the SHA-256 of its idempotency key
+// ("" for none) and its tenant: "REV\nSHA\nTENANT".
+const luaGlobal = luaNow + `
+local G = ARGV[1]
+local META, CREATING, JOBS, QUEUED, RUNNING = G .. ':meta', G .. ':creating', G .. ':jobs', G .. ':queued', G .. ':running'
+local EXPIRING, ACTIVE, SEQ = G .. ':expiring', G .. ':active', G .. ':seq'
+local function tkey(tenant, kind) return G .. ':t:' .. tenant .. ':' .. kind end
+local function parse_meta(m) return string.match(m, '^(%d+)\n(%x*)\n(.*)$') end
+-- claim_score orders a tenant's claimable jobs: higher priority first,
+-- then creation order. Priorities are clamped to 0..2 by the client;
+-- seq < 2^50.
 local function claim_score(prio, seq) return (2 - prio) * 1125899906842624 + seq end
+-- place puts a job in the indexes of its state.
+local function place(id, tenant, state, score)
+  local tq, tr, tc = tkey(tenant, 'queued'), tkey(tenant, 'running'), tkey(tenant, 'claimable')
+  if unfinished(state) then
+    redis.call('ZADD', tc, score, id)
+    redis.call('SADD', ACTIVE, tenant)
+    local add, addt, del, delt = QUEUED, tq, RUNNING, tr
+    if state == 'running' then add, addt, del, delt = RUNNING, tr, QUEUED, tq end
+    redis.call('SADD', add, id)
+    redis.call('SADD', addt, id)
+    redis.call('SREM', del, id)
+    redis.call('SREM', delt, id)
+  else
+    redis.call('SREM', QUEUED, id)
+    redis.call('SREM', tq, id)
+    redis.call('SREM', RUNNING, id)
+    redis.call('SREM', tr, id)
+    redis.call('ZREM', tc, id)
+    if redis.call('ZCARD', tc) == 0 then redis.call('SREM', ACTIVE, tenant) end
+  end
+end
+-- forget removes a job from every index, and its idempotency key if that
+-- still names it.
+local function forget(id)
+  local m = redis.call('HGET', META, id)
+  if m then
+    local _, sha, tenant = parse_meta(m)
+    place(id, tenant, 'gone', 0)
+    redis.call('ZREM', tkey(tenant, 'jobs'), id)
+    if sha ~= '' then
+      local ik = tkey(tenant, 'idem:' .. sha)
+      if redis.call('GET', ik) == id then redis.call('DEL', ik) end
+    end
+  end
+  redis.call('HDEL', META, id)
+  redis.call('HDEL', CREATING, id)
+  redis.call('ZREM', JOBS, id)
+  redis.call('SREM', QUEUED, id)
+  redis.call('SREM', RUNNING, id)
+  redis.call('ZREM', EXPIRING, id)
+end
 `
 
-// putModel stores a new version unless the latest one has the same hash.
-// KEYS: head, info, doc, models. ARGV: name, hash, info JSON, doc, token.
-// Returns {version, created (0/1), info JSON}. A retry of a call whose
-// reply was lost finds its own token and still reports created.
+// reserveJob is step 1 of CreateJob, on {global}: it honours the tenant's
+// idempotency key, checks the tenant's quota and the cap on unfinished
+// jobs, and enters the job in the indexes (queued, claimable, listed) as
+// a creation in progress (P:{global}:creating ID = "TOKEN\nMS\nSEQ").
+// ARGV: G, id, tenant, max, tenant max, priority (0..2), token, idempotency
+// key SHA-256 ("" for none).
+// Returns {'reserved', seq, reserved at (server ms)}, {'idem', job ID},
+// {'quota', n}, {'full', n} or {'taken'} (the ID belongs to another job).
+// A retry of a call whose reply was lost finds its own token.
+var reserveJobScript = redis.NewScript(luaGlobal + `
+local id, tenant, tok, sha = ARGV[2], ARGV[3], ARGV[7], ARGV[8]
+local c = redis.call('HGET', CREATING, id)
+if c then
+  local t, at, seq = string.match(c, '^([^\n]*)\n(%d+)\n(%d+)$')
+  if t == tok then return {'reserved', seq, at} end
+  return {'taken'}
+end
+if redis.call('HEXISTS', META, id) == 1 then return {'taken'} end
+local ik = nil
+if sha ~= '' then
+  ik = tkey(tenant, 'idem:' .. sha)
+  local other = redis.call('GET', ik)
+  if other then return {'idem', other} end
+end
+local tmax = tonumber(ARGV[5])
+if tmax > 0 then
+  local n = redis.call('SCARD', tkey(tenant, 'queued')) + redis.call('SCARD', tkey(tenant, 'running'))
+  if n >= tmax then return {'quota', tostring(n)} end
+end
+local max = tonumber(ARGV[4])
+if max > 0 then
+  local n = redis.call('SCARD', QUEUED) + redis.call('SCARD', RUNNING)
+  if n >= max then return {'full', tostring(n)} end
+end
+local seq = redis.call('INCR', SEQ)
+local now = now_ms()
+redis.call('ZADD', JOBS, seq, id)
+redis.call('ZADD', tkey(tenant, 'jobs'), seq, id)
+place(id, tenant, 'queued', claim_score(tonumber(ARGV[6]), seq))
+redis.call('HSET', META, id, '1\n' .. sha .. '\n' .. tenant)
+redis.call('HSET', CREATING, id, tok .. '\n' .. now .. '\n' .. seq)
+if ik then redis.call('SET', ik, id) end
+return {'reserved', tostring(seq), tostring(now)}
+`)
+
+// writeJob is step 2 of CreateJob, on {job:ID}: it stores the record at
+// revision 1, unless the reservation is older than the write window
+// (then the sweep may be undoing it: nothing is written).
+// KEYS: rec. ARGV: data, token, seq, tenant, reserved at (ms), window
+// (ms), priority, retention (ms).
+// Returns 'created' (also for a retry whose first try landed), 'stale' or
+// 'taken'.
+var writeJobScript = redis.NewScript(luaNow + `
+local ct = redis.call('HGET', KEYS[1], 'ctok')
+if ct then
+  if ct == ARGV[2] then return 'created' end
+  return 'taken'
+end
+if redis.call('EXISTS', KEYS[1]) == 1 then return 'taken' end
+if now_ms() - tonumber(ARGV[5]) > tonumber(ARGV[6]) then return 'stale' end
+redis.call('HSET', KEYS[1], 'data', ARGV[1], 'state', 'queued', 'rev', 1, 'tok', ARGV[2], 'ctok', ARGV[2],
+  'seq', ARGV[3], 'tenant', ARGV[4], 'prio', ARGV[7], 'ret', ARGV[8])
+return 'created'
+`)
+
+// confirmJob is step 3 of CreateJob, on {global}: the record is written,
+// the creation is no longer in progress. ARGV: G, id, token.
+var confirmJobScript = redis.NewScript(luaGlobal + `
+local c = redis.call('HGET', CREATING, ARGV[2])
+if c and string.sub(c, 1, #ARGV[3] + 1) == ARGV[3] .. '\n' then redis.call('HDEL', CREATING, ARGV[2]) end
+return 1
+`)
+
+// forgetJob removes a job whose record is gone from the indexes, on
+// {global}. With a token (ARGV[3]), it undoes the reservation of a
+// creation of that token and nothing else; without one, it leaves a
+// creation in progress alone. An idempotency key named in ARGV[4] is
+// deleted too if it names the job (the caller's key, in case the indexes
+// no longer know it). ARGV: G, id, token or "", idempotency key or "".
+// Returns 'forgotten', 'creating' (left alone) or 'other' (another
+// creation's reservation).
+var forgetJobScript = redis.NewScript(luaGlobal + `
+local c = redis.call('HGET', CREATING, ARGV[2])
+if ARGV[3] ~= '' then
+  if not c or string.sub(c, 1, #ARGV[3] + 1) ~= ARGV[3] .. '\n' then return 'other' end
+elseif c then
+  return 'creating'
+end
+forget(ARGV[2])
+if ARGV[4] ~= '' and redis.call('GET', ARGV[4]) == ARGV[2] then redis.call('DEL', ARGV[4]) end
+return 'forgotten'
+`)
+
+// syncJob brings the indexes in line with a record read at revision rev,
+// on {global}, unless they already reflect that revision or a later one:
+// syncs of one job may arrive in any order. A finished job leaves the
+// queue and is listed until its retention has passed (its idempotency key
+// expires with it); with retention <= 0 it is kept.
+// ARGV: G, id, rev, state, priority (0..2), seq, retention (ms).
+// Returns 'ok', 'old' (nothing to do) or 'gone' (not in the indexes).
+var syncJobScript = redis.NewScript(luaGlobal + `
+local id = ARGV[2]
+local m = redis.call('HGET', META, id)
+if not m then return 'gone' end
+local rev0, sha, tenant = parse_meta(m)
+-- The caller read the record: its creation is complete.
+redis.call('HDEL', CREATING, id)
+if tonumber(ARGV[3]) <= tonumber(rev0) then return 'old' end
+redis.call('HSET', META, id, ARGV[3] .. '\n' .. sha .. '\n' .. tenant)
+local state = ARGV[4]
+place(id, tenant, state, claim_score(tonumber(ARGV[5]), tonumber(ARGV[6])))
+local ik = nil
+if sha ~= '' then ik = tkey(tenant, 'idem:' .. sha) end
+local ret = tonumber(ARGV[7])
+if unfinished(state) or ret <= 0 then
+  redis.call('ZREM', EXPIRING, id)
+  if ik then redis.call('PERSIST', ik) end
+elseif redis.call('ZADD', EXPIRING, 'NX', now_ms() + ret, id) == 1 and ik then
+  redis.call('PEXPIRE', ik, ret)
+end
+return 'ok'
+`)
+
+// claimableJobs lists, on {global}, the first ARGV[2] jobs (all when 0)
+// of each tenant with unfinished jobs, tenants in name order.
+// ARGV: G, limit. Returns {tenant, n, id1, score1, ..., idn, scoren, ...}.
+var claimableJobsScript = redis.NewScript(luaGlobal + `
+local tenants = redis.call('SMEMBERS', ACTIVE)
+table.sort(tenants)
+local stop = tonumber(ARGV[2]) - 1
+local out = {}
+for _, t in ipairs(tenants) do
+  local zs = redis.call('ZRANGE', tkey(t, 'claimable'), 0, stop, 'WITHSCORES')
+  if #zs > 0 then
+    out[#out + 1] = t
+    out[#out + 1] = tostring(#zs / 2)
+    for _, v in ipairs(zs) do out[#out + 1] = v end
+  end
+end
+return out
+`)
+
+// sweepState reads, on {global}, the server time and the creations in
+// progress. ARGV: G. Returns {now ms, id1, "TOKEN\nMS\nSEQ", ...}.
+var sweepStateScript = redis.NewScript(luaGlobal + `
+local out = {tostring(now_ms())}
+for _, v in ipairs(redis.call('HGETALL', CREATING)) do out[#out + 1] = v end
+return out
+`)
+
+// updateJob stores a new record if the revision is still the one read
+// (compare-and-swap), on {job:ID}; a job reaching a terminal state gets
+// its retention as time to live on all its keys, one leaving it is kept
+// again. The indexes on {global} follow in a separate step (syncJob).
+// KEYS: rec, next, leases, holders, stats.
+// ARGV: expected rev, token, data, new state, retention ms, priority (0..2).
+// Returns 'ok', 'done' (this call's token is already stored: a retry of a
+// write that landed), 'conflict' or 'notfound'.
+var updateJobScript = redis.NewScript(luaNow + `
+local cur = redis.call('HMGET', KEYS[1], 'rev', 'tok', 'state')
+if not cur[1] then return 'notfound' end
+if cur[1] ~= ARGV[1] then
+  if cur[2] == ARGV[2] then return 'done' end
+  return 'conflict'
+end
+local old, new = cur[3], ARGV[4]
+redis.call('HSET', KEYS[1], 'data', ARGV[3], 'state', new, 'rev', tonumber(cur[1]) + 1, 'tok', ARGV[2],
+  'ret', ARGV[5], 'prio', ARGV[6])
+if unfinished(new) then
+  if not unfinished(old) then
+    for i = 1, 5 do redis.call('PERSIST', KEYS[i]) end
+  end
+else
+  local ret = tonumber(ARGV[5])
+  if unfinished(old) and ret > 0 then
+    for i = 1, 5 do redis.call('PEXPIRE', KEYS[i], ret) end
+  end
+end
+return 'ok'
+`)
+
+// putModel stores a new version unless the latest one has the same hash,
+// on {model:NAME}. KEYS: head, info, doc. ARGV: hash, info JSON, doc,
+// token. Returns {version, created (0/1), info JSON}. A retry of a call
+// whose reply was lost finds its own token and still reports created.
 var putModelScript = redis.NewScript(`
 local h = redis.call('HMGET', KEYS[1], 'version', 'hash', 'tok')
-if h[1] and h[2] == ARGV[2] then
+if h[1] and h[2] == ARGV[1] then
   local created = 0
-  if h[3] == ARGV[5] then created = 1 end
+  if h[3] == ARGV[4] then created = 1 end
   return {tonumber(h[1]), created, redis.call('HGET', KEYS[2], h[1])}
 end
 local v = redis.call('HINCRBY', KEYS[1], 'version', 1)
-redis.call('HSET', KEYS[1], 'hash', ARGV[2], 'tok', ARGV[5])
-redis.call('HSET', KEYS[2], v, ARGV[3])
-redis.call('HSET', KEYS[3], v, ARGV[4])
-redis.call('ZADD', KEYS[4], 0, ARGV[1])
-return {v, 1, ARGV[3]}
+redis.call('HSET', KEYS[1], 'hash', ARGV[1], 'tok', ARGV[4])
+redis.call('HSET', KEYS[2], v, ARGV[2])
+redis.call('HSET', KEYS[3], v, ARGV[3])
+return {v, 1, ARGV[2]}
+`)
+
+// listModel enters a model name in the name index, on {global}, and ends
+// the put in progress that announced it (if its mark is still the one
+// given). ARGV: G, name, mark ("" for none).
+// Returns 1 when the name was not listed before, else 0.
+var listModelScript = redis.NewScript(luaGlobal + `
+local added = redis.call('ZADD', G .. ':models', 0, ARGV[2])
+if ARGV[3] ~= '' and redis.call('HGET', G .. ':modelputs', ARGV[2]) == ARGV[3] then
+  redis.call('HDEL', G .. ':modelputs', ARGV[2])
+end
+return added
+`)
+
+// dropModelMark ends the put in progress of a model whose versions were
+// not stored (the put stopped before), on {global}, if its mark is still
+// the one given. ARGV: G, name, mark.
+var dropModelMarkScript = redis.NewScript(luaGlobal + `
+if redis.call('HGET', G .. ':modelputs', ARGV[2]) == ARGV[3] then
+  redis.call('HDEL', G .. ':modelputs', ARGV[2])
+end
+return 1
+`)
+
+// announceModel marks a put of a model in progress, on {global}, so that
+// the sweep lists the model if the put stops before it does. ARGV: G,
+// name, random text. Returns the mark: the server time in ms and the
+// random text.
+var announceModelScript = redis.NewScript(luaGlobal + `
+local mark = now_ms() .. '-' .. ARGV[3]
+redis.call('HSET', G .. ':modelputs', ARGV[2], mark)
+return mark
 `)
 
 // getModel reads a version (0: the latest).
@@ -58,92 +328,12 @@ if ARGV[2] == '1' then doc = redis.call('HGET', KEYS[3], v) or '' end
 return {tonumber(v), info, doc}
 `)
 
-// deleteModel removes every version. KEYS: head, info, doc, models.
-// ARGV: name. Returns 0 when there was no such model.
+// deleteModel removes every version, on {model:NAME}. KEYS: head, info,
+// doc. Returns 0 when there was no such model.
 var deleteModelScript = redis.NewScript(`
 if redis.call('EXISTS', KEYS[1]) == 0 then return 0 end
 redis.call('DEL', KEYS[1], KEYS[2], KEYS[3])
-redis.call('ZREM', KEYS[4], ARGV[1])
 return 1
-`)
-
-// createJob stores a queued job, honouring the idempotency key and the cap
-// on unfinished jobs, and drops index entries of jobs that have expired.
-// KEYS: rec, idem (or rec when none), jobIndex, claimable, queued, running,
-// seq, expiring.
-// ARGV: id, data, maxUnfinished, priority (0..2), token, has idem (0/1).
-// Returns {'created'}, {'idem', existing id}, {'full'} or {'taken'} (the ID
-// belongs to another job).
-var createJobScript = redis.NewScript(luaNow + luaScore + `
-local tok = redis.call('HGET', KEYS[1], 'tok')
-if tok and tok == ARGV[5] then return {'created'} end
-if ARGV[6] == '1' then
-  local other = redis.call('GET', KEYS[2])
-  if other then return {'idem', other} end
-end
-if tok then return {'taken'} end
-local max = tonumber(ARGV[3])
-if max > 0 and redis.call('SCARD', KEYS[5]) + redis.call('SCARD', KEYS[6]) >= max then
-  return {'full'}
-end
-local seq = redis.call('INCR', KEYS[7])
-local idem = ''
-if ARGV[6] == '1' then
-  idem = KEYS[2]
-  redis.call('SET', KEYS[2], ARGV[1])
-end
-redis.call('HSET', KEYS[1], 'data', ARGV[2], 'state', 'queued', 'rev', 1, 'tok', ARGV[5], 'seq', seq, 'idem', idem)
-redis.call('ZADD', KEYS[3], seq, ARGV[1])
-redis.call('ZADD', KEYS[4], claim_score(tonumber(ARGV[4]), seq), ARGV[1])
-redis.call('SADD', KEYS[5], ARGV[1])
-local gone = redis.call('ZRANGEBYSCORE', KEYS[8], '-inf', now_ms(), 'LIMIT', 0, 64)
-for _, id in ipairs(gone) do
-  redis.call('ZREM', KEYS[3], id)
-  redis.call('ZREM', KEYS[8], id)
-end
-return {'created'}
-`)
-
-// updateJob stores a new record if the revision is still the one read
-// (compare-and-swap) and moves the job between the queue indexes.
-// KEYS: rec, next, leases, holders, stats, idem (or rec when none),
-// claimable, queued, running, expiring.
-// ARGV: id, expected rev, token, data, new state, retention ms, priority (0..2).
-// Returns 'ok', 'done' (this call's token is already stored: a retry of a
-// write that landed), 'conflict' or 'notfound'.
-var updateJobScript = redis.NewScript(luaNow + luaScore + `
-local cur = redis.call('HMGET', KEYS[1], 'rev', 'tok', 'state', 'seq')
-if not cur[1] then return 'notfound' end
-if cur[1] ~= ARGV[2] then
-  if cur[2] == ARGV[3] then return 'done' end
-  return 'conflict'
-end
-local id, old, new = ARGV[1], cur[3], ARGV[5]
-redis.call('HSET', KEYS[1], 'data', ARGV[4], 'state', new, 'rev', tonumber(cur[1]) + 1, 'tok', ARGV[3])
-if unfinished(new) then
-  redis.call('ZADD', KEYS[7], claim_score(tonumber(ARGV[7]), tonumber(cur[4])), id)
-  if new == 'queued' then
-    redis.call('SADD', KEYS[8], id)
-    redis.call('SREM', KEYS[9], id)
-  else
-    redis.call('SADD', KEYS[9], id)
-    redis.call('SREM', KEYS[8], id)
-  end
-  if not unfinished(old) then
-    for i = 1, 6 do redis.call('PERSIST', KEYS[i]) end
-    redis.call('ZREM', KEYS[10], id)
-  end
-else
-  redis.call('ZREM', KEYS[7], id)
-  redis.call('SREM', KEYS[8], id)
-  redis.call('SREM', KEYS[9], id)
-  local ret = tonumber(ARGV[6])
-  if unfinished(old) and ret > 0 then
-    for i = 1, 6 do redis.call('PEXPIRE', KEYS[i], ret) end
-    redis.call('ZADD', KEYS[10], now_ms() + ret, id)
-  end
-end
-return 'ok'
 `)
 
 // claimBlock leases a block: the lowest block whose lease expired more

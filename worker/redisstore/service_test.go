@@ -47,14 +47,17 @@ func canonicalResult(t *testing.T, r *infer.Result) string {
 // infer.Runner (the engine of `beliefd run`) gives for the same query and
 // seed, bit for bit.
 func TestServiceOverRedis(t *testing.T) {
-	url := redistest.Start(t)
+	serviceOverRedis(t, redistest.Start(t), false)
+}
+
+func serviceOverRedis(t *testing.T, url string, cluster bool) {
 	prefix := redistest.KeyPrefix(t, url)
 	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
 	defer cancel()
 	quiet := slog.New(slog.NewTextHandler(io.Discard, nil))
 	var apiStore *Store
 	newSvc := func() *jobs.Service {
-		st := newStore(t, url, Options{KeyPrefix: prefix, Logger: quiet})
+		st := newStore(t, url, Options{KeyPrefix: prefix, Logger: quiet, Cluster: cluster})
 		if apiStore == nil {
 			apiStore = st
 		}

@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"log/slog"
 	"strings"
+	"sync"
 	"time"
 
 	"github.com/redis/go-redis/v9"
@@ -21,7 +22,12 @@ const (
 	DefaultDialTimeout  = time.Second
 	DefaultReadTimeout  = time.Second
 	DefaultWriteTimeout = time.Second
+	DefaultSweepEvery   = 30 * time.Second
 )
+
+// createWindow is how long after its reservation a job's record may still
+// be written (doc.go, "Steps across slots").
+const createWindow = 5 * time.Second
 
 // Options configure a Store. The zero value is usable: every field has a
 // default.
@@ -31,7 +37,8 @@ type Options struct {
 	KeyPrefix string
 	// SkewMargin is how long past its expiry a lease must be before another
 	// worker may claim its block, a margin for clocks that disagree; default 2s.
-	// Lease times are read from the Redis server's clock.
+	// Lease times are read from the Redis server's clock. On a Redis
+	// Cluster it also bounds how far the nodes' clocks may disagree.
 	SkewMargin time.Duration
 	// DialTimeout, ReadTimeout and WriteTimeout bound each network step so
 	// that calls fail fast with jobs.ErrUnavailable when Redis is down;
@@ -39,78 +46,167 @@ type Options struct {
 	DialTimeout  time.Duration
 	ReadTimeout  time.Duration
 	WriteTimeout time.Duration
-	// Logger receives connection trouble of the notification channel;
-	// default slog.Default().
+	// Cluster makes New treat its URL as the seed nodes of a Redis Cluster:
+	// redis://HOST:PORT?addr=HOST2:PORT2&addr=HOST3:PORT3 (no database).
+	Cluster bool
+	// SweepEvery is how often the Store checks the indexes against the
+	// records and repairs what an interrupted call left half done (doc.go,
+	// "Steps across slots"); processes sharing a Redis take turns, so the
+	// whole deployment sweeps about once per SweepEvery. Default 30s;
+	// negative: never (Sweep may still be called).
+	SweepEvery time.Duration
+	// Logger receives connection trouble of the notification channel and
+	// the sweep's repairs; default slog.Default().
 	Logger *slog.Logger
+
+	// createWindow replaces the write window of creations (tests only).
+	createWindow time.Duration
 }
 
 // Store is the Redis backend of jobs.Store. It is safe for concurrent use.
 type Store struct {
-	rdb  *redis.Client
+	rdb  redis.UniversalClient
 	k    keys
 	skew time.Duration
 	log  *slog.Logger
 	hub  *hub
+	// window is how long a reserved job's record may still be written;
+	// grace is how long the sweep leaves a creation in progress alone:
+	// window plus twice the skew margin, for the clocks of two nodes.
+	window, grace time.Duration
+
+	quit      chan struct{} // closed by Close: the sweeper stops
+	sweepDone chan struct{} // closed when the sweeper has stopped
+	closeOnce sync.Once
 }
 
 var _ jobs.Store = (*Store)(nil)
 
-// New connects to the Redis server at url (redis://[user:password@]HOST:PORT/DB,
-// or rediss:// for TLS; go-redis query parameters such as dial_timeout are
-// honoured) and checks that it answers. An unreachable server gives an error
-// wrapping jobs.ErrUnavailable.
-func New(ctx context.Context, url string, opt Options) (*Store, error) {
-	ro, err := redis.ParseURL(url)
-	if err != nil {
-		return nil, fmt.Errorf("redisstore: url: %w", err)
-	}
+// checkOptions validates opt and fills its defaults.
+func checkOptions(opt Options) (Options, error) {
 	if opt.KeyPrefix == "" {
 		opt.KeyPrefix = DefaultKeyPrefix
 	}
 	if strings.ContainsAny(opt.KeyPrefix, "{}") {
-		return nil, fmt.Errorf("redisstore: key prefix %q: braces are reserved for hash tags", opt.KeyPrefix)
+		return opt, fmt.Errorf("redisstore: key prefix %q: braces are reserved for hash tags", opt.KeyPrefix)
 	}
 	if opt.SkewMargin < 0 {
-		return nil, fmt.Errorf("redisstore: skew margin %v is negative", opt.SkewMargin)
+		return opt, fmt.Errorf("redisstore: skew margin %v is negative", opt.SkewMargin)
 	}
 	if opt.SkewMargin == 0 {
 		opt.SkewMargin = DefaultSkewMargin
 	}
+	if opt.SweepEvery == 0 {
+		opt.SweepEvery = DefaultSweepEvery
+	}
 	if opt.Logger == nil {
 		opt.Logger = slog.Default()
 	}
-	if ro.DialTimeout == 0 {
-		ro.DialTimeout = orDefault(opt.DialTimeout, DefaultDialTimeout)
-	}
-	if ro.ReadTimeout == 0 {
-		ro.ReadTimeout = orDefault(opt.ReadTimeout, DefaultReadTimeout)
-	}
-	if ro.WriteTimeout == 0 {
-		ro.WriteTimeout = orDefault(opt.WriteTimeout, DefaultWriteTimeout)
-	}
-	if ro.MaxRetries == 0 {
-		// One retry absorbs a pooled connection broken by a server restart;
-		// more would only delay ErrUnavailable when the server is down.
-		ro.MaxRetries = 1
-	}
-	if ro.MaxRetryBackoff == 0 {
-		ro.MaxRetryBackoff = 100 * time.Millisecond
-	}
-	ro.DialerRetries = 1
-	ro.ContextTimeoutEnabled = true
-	ro.DisableIdentity = true
-	ro.MaintNotificationsConfig = &maintnotifications.Config{Mode: maintnotifications.ModeDisabled}
+	return opt, nil
+}
 
-	s := &Store{
-		rdb:  redis.NewClient(ro),
-		k:    keys{p: opt.KeyPrefix},
-		skew: opt.SkewMargin,
-		log:  opt.Logger.With("component", "redisstore"),
+// New connects to the Redis server at url (redis://[user:password@]HOST:PORT/DB,
+// or rediss:// for TLS; go-redis query parameters such as dial_timeout are
+// honoured), or with opt.Cluster to the Redis Cluster whose nodes url names
+// (redis://HOST:PORT?addr=HOST2:PORT2), and checks that it answers. An
+// unreachable server gives an error wrapping jobs.ErrUnavailable.
+func New(ctx context.Context, url string, opt Options) (*Store, error) {
+	opt, err := checkOptions(opt)
+	if err != nil {
+		return nil, err
 	}
+	var rdb redis.UniversalClient
+	addr := ""
+	if opt.Cluster {
+		co, err := redis.ParseClusterURL(url)
+		if err != nil {
+			return nil, fmt.Errorf("redisstore: cluster url: %w", err)
+		}
+		if co.DialTimeout == 0 {
+			co.DialTimeout = orDefault(opt.DialTimeout, DefaultDialTimeout)
+		}
+		if co.ReadTimeout == 0 {
+			co.ReadTimeout = orDefault(opt.ReadTimeout, DefaultReadTimeout)
+		}
+		if co.WriteTimeout == 0 {
+			co.WriteTimeout = orDefault(opt.WriteTimeout, DefaultWriteTimeout)
+		}
+		if co.MaxRetries == 0 {
+			co.MaxRetries = 1
+		}
+		if co.MaxRetryBackoff == 0 {
+			co.MaxRetryBackoff = 100 * time.Millisecond
+		}
+		co.DialerRetries = 1
+		co.ContextTimeoutEnabled = true
+		co.DisableIdentity = true
+		co.MaintNotificationsConfig = &maintnotifications.Config{Mode: maintnotifications.ModeDisabled}
+		rdb, addr = redis.NewClusterClient(co), strings.Join(co.Addrs, ",")
+	} else {
+		ro, err := redis.ParseURL(url)
+		if err != nil {
+			return nil, fmt.Errorf("redisstore: url: %w", err)
+		}
+		if ro.DialTimeout == 0 {
+			ro.DialTimeout = orDefault(opt.DialTimeout, DefaultDialTimeout)
+		}
+		if ro.ReadTimeout == 0 {
+			ro.ReadTimeout = orDefault(opt.ReadTimeout, DefaultReadTimeout)
+		}
+		if ro.WriteTimeout == 0 {
+			ro.WriteTimeout = orDefault(opt.WriteTimeout, DefaultWriteTimeout)
+		}
+		if ro.MaxRetries == 0 {
+			// One retry absorbs a pooled connection broken by a server restart;
+			// more would only delay ErrUnavailable when the server is down.
+			ro.MaxRetries = 1
+		}
+		if ro.MaxRetryBackoff == 0 {
+			ro.MaxRetryBackoff = 100 * time.Millisecond
+		}
+		ro.DialerRetries = 1
+		ro.ContextTimeoutEnabled = true
+		ro.DisableIdentity = true
+		ro.MaintNotificationsConfig = &maintnotifications.Config{Mode: maintnotifications.ModeDisabled}
+		rdb, addr = redis.NewClient(ro), ro.Addr
+	}
+	s, err := NewWithClient(ctx, rdb, opt)
+	if err != nil {
+		return nil, fmt.Errorf("redisstore: connect %s: %w", addr, err)
+	}
+	return s, nil
+}
+
+// NewWithClient returns a Store over rdb, a *redis.Client (one server) or
+// a *redis.ClusterClient (Redis Cluster), and checks that it answers.
+// The Store owns rdb from then on: Close closes it, and so does a failed
+// NewWithClient. The client's own timeouts apply; New sets short ones so
+// that calls fail fast when Redis is down.
+func NewWithClient(ctx context.Context, rdb redis.UniversalClient, opt Options) (*Store, error) {
+	opt, err := checkOptions(opt)
+	if err != nil {
+		_ = rdb.Close()
+		return nil, err
+	}
+	s := &Store{
+		rdb:       rdb,
+		k:         keys{p: opt.KeyPrefix},
+		skew:      opt.SkewMargin,
+		log:       opt.Logger.With("component", "redisstore"),
+		window:    orDefault(opt.createWindow, createWindow),
+		quit:      make(chan struct{}),
+		sweepDone: make(chan struct{}),
+	}
+	s.grace = s.window + 2*s.skew
 	s.hub = newHub(s)
 	if err := s.Ping(ctx); err != nil {
 		_ = s.rdb.Close()
-		return nil, fmt.Errorf("redisstore: connect %s: %w", ro.Addr, err)
+		return nil, err
+	}
+	if opt.SweepEvery > 0 {
+		go s.sweepLoop(opt.SweepEvery)
+	} else {
+		close(s.sweepDone)
 	}
 	return s, nil
 }
@@ -122,13 +218,22 @@ func orDefault(d, def time.Duration) time.Duration {
 	return def
 }
 
-// Ping reports whether Redis answers (readiness).
+// Ping reports whether Redis answers (readiness): the server, or every
+// primary of a cluster.
 func (s *Store) Ping(ctx context.Context) error {
+	if c, ok := s.rdb.(*redis.ClusterClient); ok {
+		return s.fail(ctx, "ping", c.ForEachMaster(ctx, func(ctx context.Context, n *redis.Client) error {
+			return n.Ping(ctx).Err()
+		}))
+	}
 	return s.fail(ctx, "ping", s.rdb.Ping(ctx).Err())
 }
 
-// Close ends every subscription and closes the connections.
+// Close stops the sweeper, ends every subscription and closes the
+// connections.
 func (s *Store) Close() error {
+	s.closeOnce.Do(func() { close(s.quit) })
+	<-s.sweepDone
 	s.hub.close()
 	if err := s.rdb.Close(); err != nil && !errors.Is(err, redis.ErrClosed) {
 		return fmt.Errorf("redisstore: close: %w", err)

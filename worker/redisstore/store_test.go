@@ -25,14 +25,14 @@ func testJob(id string) *jobs.Job {
 	}
 }
 
-func create(t *testing.T, s *Store, j *jobs.Job) {
+func create(t testing.TB, s *Store, j *jobs.Job) {
 	t.Helper()
-	if _, created, err := s.CreateJob(ctxFor(t), j, 0); err != nil || !created {
+	if _, created, err := s.CreateJob(ctxFor(t), j, jobs.CreateLimits{}); err != nil || !created {
 		t.Fatalf("CreateJob(%s) = created %v, %v", j.ID, created, err)
 	}
 }
 
-func setState(t *testing.T, s *Store, id string, st jobs.State) {
+func setState(t testing.TB, s *Store, id string, st jobs.State) {
 	t.Helper()
 	if _, err := s.UpdateJob(ctxFor(t), id, func(j *jobs.Job) error { j.State = st; return nil }); err != nil {
 		t.Fatalf("UpdateJob(%s -> %s): %v", id, st, err)
@@ -54,7 +54,7 @@ func hashTag(key string) string {
 	return key[i+1 : i+1+j]
 }
 
-func keysUnder(t *testing.T, s *Store) map[string]string {
+func keysUnder(t testing.TB, s *Store) map[string]string {
 	t.Helper()
 	ctx := ctxFor(t)
 	out := map[string]string{}
@@ -82,6 +82,7 @@ func TestKeyLayout(t *testing.T) {
 		t.Fatal(err)
 	}
 	j := testJob("J1")
+	j.Tenant = "acme"
 	j.IdempotencyKey = "client-key"
 	create(t, s, j)
 	for range 3 {
@@ -96,20 +97,24 @@ func TestKeyLayout(t *testing.T) {
 
 	p := s.k.p
 	want := map[string]string{
-		p + ":{model:grid}":       "hash",
-		p + ":{model:grid}:info":  "hash",
-		p + ":{model:grid}:doc":   "hash",
-		p + ":{global}:models":    "zset",
-		p + ":{job:J1}":           "hash",
-		p + ":{job:J1}:next":      "string",
-		p + ":{job:J1}:leases":    "zset",
-		p + ":{job:J1}:holders":   "hash",
-		p + ":{job:J1}:stats":     "hash",
-		p + ":{global}:jobs":      "zset",
-		p + ":{global}:seq":       "string",
-		p + ":{global}:claimable": "zset",
-		p + ":{global}:running":   "set",
-		s.k.idem("client-key"):    "string",
+		p + ":{model:grid}":              "hash",
+		p + ":{model:grid}:info":         "hash",
+		p + ":{model:grid}:doc":          "hash",
+		p + ":{global}:models":           "zset",
+		p + ":{job:J1}":                  "hash",
+		p + ":{job:J1}:next":             "string",
+		p + ":{job:J1}:leases":           "zset",
+		p + ":{job:J1}:holders":          "hash",
+		p + ":{job:J1}:stats":            "hash",
+		p + ":{global}:jobs":             "zset",
+		p + ":{global}:seq":              "string",
+		p + ":{global}:meta":             "hash",
+		p + ":{global}:running":          "set",
+		p + ":{global}:active":           "set",
+		p + ":{global}:t:acme:jobs":      "zset",
+		p + ":{global}:t:acme:running":   "set",
+		p + ":{global}:t:acme:claimable": "zset",
+		s.k.idem("acme", "client-key"):   "string",
 	}
 	got := keysUnder(t, s)
 	if fmt.Sprint(got) != fmt.Sprint(want) {
@@ -147,7 +152,7 @@ func TestKeyLayout(t *testing.T) {
 	t.Logf("memory of the keys of one job (small record, 3 leases, 1 block of stats): %d bytes", total)
 
 	// Finishing the job gives all its keys, and its idempotency key, the
-	// job's retention as time to live.
+	// job's retention as time to live, and frees its place in the quota.
 	if _, err := s.UpdateJob(ctx, "J1", func(j *jobs.Job) error {
 		j.State, j.Retention = jobs.StateSucceeded, 90*time.Second
 		return nil
@@ -155,7 +160,7 @@ func TestKeyLayout(t *testing.T) {
 		t.Fatal(err)
 	}
 	jk := s.k.job("J1")
-	for _, k := range []string{jk.rec, jk.next, jk.leases, jk.holders, jk.stats, s.k.idem("client-key")} {
+	for _, k := range []string{jk.rec, jk.next, jk.leases, jk.holders, jk.stats, s.k.idem("acme", "client-key")} {
 		ttl, err := s.rdb.PTTL(ctx, k).Result()
 		if err != nil {
 			t.Fatal(err)
@@ -164,32 +169,80 @@ func TestKeyLayout(t *testing.T) {
 			t.Errorf("TTL of %s after the job finished = %v; want in (0, 90s]", k, ttl)
 		}
 	}
-	if n, err := s.rdb.ZCard(ctx, s.k.claimable()).Result(); err != nil || n != 0 {
-		t.Fatalf("claimable jobs after the only job finished: %d, %v", n, err)
+	for _, k := range []string{s.k.tenant("acme", "claimable"), s.k.tenant("acme", "running"), s.k.running(), s.k.active()} {
+		if n, err := s.rdb.Exists(ctx, k).Result(); err != nil || n != 0 {
+			t.Errorf("%s exists after the only job finished (%v)", k, err)
+		}
 	}
 	if n, err := s.rdb.ZCard(ctx, s.k.expiring()).Result(); err != nil || n != 1 {
 		t.Fatalf("expiring index holds %d, %v; want the finished job", n, err)
 	}
 	// Back to queued (an operator's retry): the keys are kept again.
 	setState(t, s, "J1", jobs.StateQueued)
-	for _, k := range []string{jk.rec, jk.stats, s.k.idem("client-key")} {
+	for _, k := range []string{jk.rec, jk.stats, s.k.idem("acme", "client-key")} {
 		if ttl, err := s.rdb.PTTL(ctx, k).Result(); err != nil || ttl != -1 {
 			t.Errorf("TTL of %s after the job was queued again = %v, %v; want none (-1ms)", k, ttl, err)
 		}
 	}
-	if ids, err := s.ClaimableJobs(ctx, 0); err != nil || fmt.Sprint(ids) != "[J1]" {
-		t.Fatalf("ClaimableJobs after requeue = %v, %v; want [J1]", ids, err)
+	if cl, err := s.ClaimableJobs(ctx, 0); err != nil || fmt.Sprint(cl) != "[{J1 acme normal}]" {
+		t.Fatalf("ClaimableJobs after requeue = %v, %v; want [{J1 acme normal}]", cl, err)
+	}
+	if q, r, err := s.UnfinishedOf(ctx, "acme"); err != nil || q != 1 || r != 0 {
+		t.Fatalf("UnfinishedOf(acme) after requeue = %d, %d, %v; want 1, 0", q, r, err)
 	}
 }
 
+// BenchmarkIndexMemory measures, for doc.go and deploy/SCALING.md, what a
+// job costs the indexes on {global}: their MEMORY USAGE per job, over b.N
+// jobs of 4 tenants, half with an idempotency key, queued and then
+// finished (and kept).
+//
+//	go test -run '^$' -bench IndexMemory -benchtime 2000x ./worker/redisstore/
+func BenchmarkIndexMemory(b *testing.B) {
+	url := redistest.Start(b)
+	s := newStore(b, url, Options{SweepEvery: -1})
+	ctx := ctxFor(b)
+	globalBytes := func() int64 {
+		var n int64
+		for k := range keysUnder(b, s) {
+			if hashTag(k) == "global" {
+				m, err := s.rdb.MemoryUsage(ctx, k, 0).Result() // 0: every element
+				if err != nil {
+					b.Fatal(err)
+				}
+				n += m
+			}
+		}
+		return n
+	}
+	id := func(i int) string { return fmt.Sprintf("j%023x", i) } // the length of the service's IDs
+	before := globalBytes()
+	for i := range b.N {
+		j := testJob(id(i))
+		j.Tenant = fmt.Sprintf("tenant-%d", i%4)
+		if i%2 == 0 {
+			j.IdempotencyKey = fmt.Sprint("key-", i)
+		}
+		create(b, s, j)
+	}
+	queued := globalBytes()
+	for i := range b.N {
+		setState(b, s, id(i), jobs.StateSucceeded)
+	}
+	finished := globalBytes()
+	b.ReportMetric(float64(queued-before)/float64(b.N), "queued-B/job")
+	b.ReportMetric(float64(finished-before)/float64(b.N), "finished-B/job")
+}
+
 // TestIndexPruned checks that index entries of expired jobs go away: at
-// the next CreateJob, and when ListJobs meets a record that is gone.
+// the next sweep, and when ListJobs meets a record that is gone.
 func TestIndexPruned(t *testing.T) {
 	url := redistest.Start(t)
 	s := newStore(t, url, Options{})
 	ctx := ctxFor(t)
 	for _, id := range []string{"a", "b"} {
 		j := testJob(id)
+		j.Tenant = "acme"
 		j.Retention = 50 * time.Millisecond
 		create(t, s, j)
 		setState(t, s, id, jobs.StateFailed)
@@ -199,25 +252,33 @@ func TestIndexPruned(t *testing.T) {
 		return err == nil && n == 0
 	})
 	// ListJobs skips and prunes entries whose record is gone.
-	js, err := s.ListJobs(ctx, "", 0)
+	js, err := s.ListJobs(ctx, "acme", "", 0)
 	if err != nil || len(js) != 0 {
 		t.Fatalf("ListJobs = %v, %v; want none", js, err)
 	}
-	if n, _ := s.rdb.ZCard(ctx, s.k.jobIndex()).Result(); n != 0 {
-		t.Fatalf("index holds %d entries after ListJobs met expired records", n)
+	for _, k := range []string{s.k.jobIndex(), s.k.tenant("acme", "jobs"), s.k.meta(), s.k.expiring()} {
+		if n, _ := s.rdb.Exists(ctx, k).Result(); n != 0 {
+			t.Fatalf("%s still exists after ListJobs met expired records", k)
+		}
 	}
-	// CreateJob prunes by the expiring index.
+	// The sweep prunes by the expiring index, once the record is gone.
 	j := testJob("c")
 	j.Retention = 50 * time.Millisecond
 	create(t, s, j)
 	setState(t, s, "c", jobs.StateCancelled)
-	jobstest.Eventually(t, 10*time.Second, "the index is pruned at the next CreateJob", func() bool {
-		create(t, s, testJob(fmt.Sprint("d", time.Now().UnixNano())))
-		_, err := s.rdb.ZScore(ctx, s.k.jobIndex(), "c").Result()
-		return errors.Is(err, redis.Nil)
+	jobstest.Eventually(t, 10*time.Second, "the sweep prunes an expired job", func() bool {
+		rep, err := s.Sweep(ctx)
+		if err != nil {
+			t.Fatal(err)
+		}
+		_, err = s.rdb.ZScore(ctx, s.k.jobIndex(), "c").Result()
+		return errors.Is(err, redis.Nil) && rep.Pruned == 1
 	})
 	if n, _ := s.rdb.ZCard(ctx, s.k.expiring()).Result(); n != 0 {
 		t.Fatalf("expiring index holds %d entries after pruning", n)
+	}
+	if ok, _ := s.rdb.HExists(ctx, s.k.meta(), "c").Result(); ok {
+		t.Fatalf("meta of the pruned job is kept")
 	}
 }
 
@@ -228,23 +289,40 @@ func TestRetriedScripts(t *testing.T) {
 	s := newStore(t, url, Options{})
 	ctx := ctxFor(t)
 	jk := s.k.job("J")
-	createKeys := []string{jk.rec, jk.rec, s.k.jobIndex(), s.k.claimable(), s.k.queued(), s.k.running(), s.k.seq(), s.k.expiring()}
-	for i := range 2 {
-		res, err := createJobScript.Run(ctx, s.rdb, createKeys, "J", `{"id":"J","state":"queued"}`, 0, 1, "tok-1", "0").StringSlice()
-		if err != nil || res[0] != "created" {
-			t.Fatalf("create, try %d: %v, %v; want created", i+1, res, err)
+	reserve := func(tok string) []string {
+		t.Helper()
+		res, err := reserveJobScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), "J", "acme", 0, 0, 1, tok, "").StringSlice()
+		if err != nil {
+			t.Fatal(err)
 		}
+		return res
+	}
+	first, again := reserve("tok-1"), reserve("tok-1")
+	if first[0] != "reserved" || fmt.Sprint(first) != fmt.Sprint(again) {
+		t.Fatalf("reserve and its replay = %v, %v; want the same reservation", first, again)
 	}
 	if seq, _ := s.rdb.Get(ctx, s.k.seq()).Int(); seq != 1 {
-		t.Fatalf("a replayed create ran twice: sequence %d", seq)
+		t.Fatalf("a replayed reservation ran twice: sequence %d", seq)
 	}
-	if res, err := createJobScript.Run(ctx, s.rdb, createKeys, "J", `{}`, 0, 1, "tok-2", "0").StringSlice(); err != nil || res[0] != "taken" {
-		t.Fatalf("create of a taken ID by another call: %v, %v; want taken", res, err)
+	if res := reserve("tok-2"); res[0] != "taken" {
+		t.Fatalf("reservation of a reserved ID by another call: %v; want taken", res)
 	}
-	updKeys := []string{jk.rec, jk.next, jk.leases, jk.holders, jk.stats, jk.rec, s.k.claimable(), s.k.queued(), s.k.running(), s.k.expiring()}
+	write := func(tok string) string {
+		t.Helper()
+		res, err := writeJobScript.Run(ctx, s.rdb, []string{jk.rec}, `{"id":"J","tenant":"acme","state":"queued"}`, tok, first[1], "acme",
+			first[2], s.window.Milliseconds(), 1, 1000).Text()
+		if err != nil {
+			t.Fatal(err)
+		}
+		return res
+	}
+	if w1, w2, w3 := write("tok-1"), write("tok-1"), write("tok-2"); w1 != "created" || w2 != "created" || w3 != "taken" {
+		t.Fatalf("write, its replay, another call's write = %s, %s, %s; want created, created, taken", w1, w2, w3)
+	}
+	updKeys := []string{jk.rec, jk.next, jk.leases, jk.holders, jk.stats}
 	var replies []string
 	for range 2 {
-		res, err := updateJobScript.Run(ctx, s.rdb, updKeys, "J", "1", "tok-u", `{"id":"J","state":"running"}`, "running", 1000, 1).Text()
+		res, err := updateJobScript.Run(ctx, s.rdb, updKeys, "1", "tok-u", `{"id":"J","state":"running"}`, "running", 1000, 1).Text()
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -256,12 +334,31 @@ func TestRetriedScripts(t *testing.T) {
 	if rev, _ := s.rdb.HGet(ctx, jk.rec, "rev").Result(); rev != "2" {
 		t.Fatalf("revision after an update and its replay = %s; want 2", rev)
 	}
-	if q, r, err := s.Unfinished(ctx); err != nil || q != 0 || r != 1 {
-		t.Fatalf("Unfinished = %d, %d, %v; want 0, 1", q, r, err)
-	}
 	// An update from a stale read by another call is a conflict.
-	if res, _ := updateJobScript.Run(ctx, s.rdb, updKeys, "J", "1", "tok-v", `{}`, "failed", 1000, 1).Text(); res != "conflict" {
+	if res, _ := updateJobScript.Run(ctx, s.rdb, updKeys, "1", "tok-v", `{}`, "failed", 1000, 1).Text(); res != "conflict" {
 		t.Fatalf("stale update replied %s; want conflict", res)
+	}
+	// Syncs of the indexes apply once, and in revision order only.
+	sync := func(rev int, state string) string {
+		t.Helper()
+		res, err := syncJobScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), "J", rev, state, 1, first[1], 1000).Text()
+		if err != nil {
+			t.Fatal(err)
+		}
+		return res
+	}
+	if a, b := sync(2, "running"), sync(2, "running"); a != "ok" || b != "old" {
+		t.Fatalf("sync and its replay = %s, %s; want ok, old", a, b)
+	}
+	if q, r, err := s.UnfinishedOf(ctx, "acme"); err != nil || q != 0 || r != 1 {
+		t.Fatalf("UnfinishedOf(acme) = %d, %d, %v; want 0, 1", q, r, err)
+	}
+	// The sync of revision 4 (finished) overtakes that of revision 3.
+	if a, b := sync(4, "succeeded"), sync(3, "running"); a != "ok" || b != "old" {
+		t.Fatalf("syncs of revisions 4 then 3 = %s, %s; want ok, old", a, b)
+	}
+	if q, r, err := s.UnfinishedOf(ctx, "acme"); err != nil || q != 0 || r != 0 {
+		t.Fatalf("UnfinishedOf(acme) after the finishing sync = %d, %d, %v; want 0, 0", q, r, err)
 	}
 }
 
@@ -401,7 +498,7 @@ func TestConcurrentProcesses(t *testing.T) {
 		go func() {
 			defer wg.Done()
 			j := testJob(fmt.Sprint("C", i))
-			_, ok, err := stores[i%len(stores)].CreateJob(ctx, j, 6) // J is unfinished: 5 places left
+			_, ok, err := stores[i%len(stores)].CreateJob(ctx, j, jobs.CreateLimits{MaxUnfinished: 6}) // J is unfinished: 5 places left
 			cmu.Lock()
 			defer cmu.Unlock()
 			switch {
@@ -428,7 +525,7 @@ func TestConcurrentProcesses(t *testing.T) {
 			defer wg.Done()
 			k := testJob(fmt.Sprint("K", i))
 			k.IdempotencyKey = "same"
-			got, ok, err := stores[i%len(stores)].CreateJob(ctx, k, 0)
+			got, ok, err := stores[i%len(stores)].CreateJob(ctx, k, jobs.CreateLimits{})
 			if err != nil {
 				t.Errorf("CreateJob(%s): %v", k.ID, err)
 				return
@@ -464,11 +561,13 @@ func TestUnavailable(t *testing.T) {
 		"GetModel":      func() error { _, _, err := s.GetModel(ctx, "m", 0); return err },
 		"ListModels":    func() error { _, err := s.ListModels(ctx, "", 10); return err },
 		"DeleteModel":   func() error { return s.DeleteModel(ctx, "m") },
-		"CreateJob":     func() error { _, _, err := s.CreateJob(ctx, testJob("K"), 0); return err },
+		"CreateJob":     func() error { _, _, err := s.CreateJob(ctx, testJob("K"), jobs.CreateLimits{}); return err },
 		"GetJob":        func() error { _, err := s.GetJob(ctx, "J"); return err },
-		"ListJobs":      func() error { _, err := s.ListJobs(ctx, "", 10); return err },
+		"ListJobs":      func() error { _, err := s.ListJobs(ctx, "", "", 10); return err },
 		"UpdateJob":     func() error { _, err := s.UpdateJob(ctx, "J", func(*jobs.Job) error { return nil }); return err },
 		"Unfinished":    func() error { _, _, err := s.Unfinished(ctx); return err },
+		"UnfinishedOf":  func() error { _, _, err := s.UnfinishedOf(ctx, "acme"); return err },
+		"Sweep":         func() error { _, err := s.Sweep(ctx); return err },
 		"ClaimableJobs": func() error { _, err := s.ClaimableJobs(ctx, 10); return err },
 		"ClaimBlock":    func() error { _, err := s.ClaimBlock(ctx, "J", "w", 1, time.Minute); return err },
 		"ExtendLease":   func() error { return s.ExtendLease(ctx, "J", 0, "w", time.Minute) },
@@ -534,7 +633,7 @@ func TestRestartKeepsWorking(t *testing.T) {
 	srv.Restart()
 	jobstest.Eventually(t, 10*time.Second, "a signal after the connection came back", func() bool { return len(sig) == 1 })
 	jobstest.Eventually(t, 10*time.Second, "calls work after the restart", func() bool {
-		_, _, err := s.CreateJob(ctx, testJob("after"), 0)
+		_, _, err := s.CreateJob(ctx, testJob("after"), jobs.CreateLimits{})
 		return err == nil
 	})
 	// The subscription is live again: a notification gets through.

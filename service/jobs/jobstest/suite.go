@@ -6,6 +6,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"strings"
 	"sync"
 	"testing"
 	"time"
@@ -57,6 +58,11 @@ func Run(t *testing.T, newStore func(t *testing.T) jobs.Store) {
 		{"NotifyCoalesces", testNotify},
 		{"SubscribeEnds", testSubscribeEnds},
 		{"ClaimablePriorityOrder", testPriorityOrder},
+		{"TenantListing", testTenantListing},
+		{"TenantQuota", testTenantQuota},
+		{"TenantIdempotency", testTenantIdempotency},
+		{"TenantClaimable", testTenantClaimable},
+		{"TenantFixed", testTenantFixed},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
@@ -88,7 +94,7 @@ func newJob(id string, i int) *jobs.Job {
 
 func mustCreate(t *testing.T, s jobs.Store, j *jobs.Job) *jobs.Job {
 	t.Helper()
-	got, created, err := s.CreateJob(ctxFor(t), j, 0)
+	got, created, err := s.CreateJob(ctxFor(t), j, jobs.CreateLimits{})
 	if err != nil || !created {
 		t.Fatalf("CreateJob(%s) = created %v, %v; want created", j.ID, created, err)
 	}
@@ -313,7 +319,7 @@ func testJobList(t *testing.T, s jobs.Store) {
 	var pages [][]string
 	after := ""
 	for range 5 {
-		js, err := s.ListJobs(ctx, after, 2)
+		js, err := s.ListJobs(ctx, "", after, 2)
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -340,7 +346,7 @@ func testIdempotency(t *testing.T, s jobs.Store) {
 	mustCreate(t, s, a)
 	b := newJob("j-b", 1)
 	b.IdempotencyKey = "key-1"
-	got, created, err := s.CreateJob(ctx, b, 0)
+	got, created, err := s.CreateJob(ctx, b, jobs.CreateLimits{})
 	if err != nil || created || got.ID != "j-a" {
 		t.Fatalf("CreateJob with a used key = %v created %v, %v; want j-a, not created", got, created, err)
 	}
@@ -348,13 +354,13 @@ func testIdempotency(t *testing.T, s jobs.Store) {
 		t.Fatalf("the duplicate was stored: %v", err)
 	}
 	// A retried submission finds its job even when the queue is full.
-	got, created, err = s.CreateJob(ctx, b, 1)
+	got, created, err = s.CreateJob(ctx, b, jobs.CreateLimits{MaxUnfinished: 1, TenantMaxUnfinished: 1})
 	if err != nil || created || got.ID != "j-a" {
 		t.Fatalf("CreateJob with a used key on a full queue = %v created %v, %v; want j-a", got, created, err)
 	}
 	// A finished job still kept still owns its key.
 	finish(t, s, "j-a", jobs.StateSucceeded)
-	got, created, err = s.CreateJob(ctx, b, 0)
+	got, created, err = s.CreateJob(ctx, b, jobs.CreateLimits{})
 	if err != nil || created || got.ID != "j-a" || got.State != jobs.StateSucceeded {
 		t.Fatalf("CreateJob with the key of a finished job = %v created %v, %v; want j-a", got, created, err)
 	}
@@ -366,11 +372,11 @@ func testIdempotency(t *testing.T, s jobs.Store) {
 func testQueueFull(t *testing.T, s jobs.Store) {
 	ctx := ctxFor(t)
 	for i := range 2 {
-		if _, created, err := s.CreateJob(ctx, newJob(fmt.Sprint("j", i), i), 2); err != nil || !created {
+		if _, created, err := s.CreateJob(ctx, newJob(fmt.Sprint("j", i), i), jobs.CreateLimits{MaxUnfinished: 2}); err != nil || !created {
 			t.Fatalf("CreateJob %d: %v", i, err)
 		}
 	}
-	if _, _, err := s.CreateJob(ctx, newJob("j2", 2), 2); !errors.Is(err, jobs.ErrQueueFull) {
+	if _, _, err := s.CreateJob(ctx, newJob("j2", 2), jobs.CreateLimits{MaxUnfinished: 2}); !errors.Is(err, jobs.ErrQueueFull) {
 		t.Fatalf("third CreateJob at capacity 2: %v; want ErrQueueFull", err)
 	}
 	if _, err := s.GetJob(ctx, "j2"); !errors.Is(err, jobs.ErrNotFound) {
@@ -389,7 +395,7 @@ func testQueueFull(t *testing.T, s jobs.Store) {
 	if q, r, err := s.Unfinished(ctx); err != nil || q != 1 || r != 0 {
 		t.Fatalf("Unfinished = %d, %d, %v; want 1, 0", q, r, err)
 	}
-	if _, created, err := s.CreateJob(ctx, newJob("j2", 2), 2); err != nil || !created {
+	if _, created, err := s.CreateJob(ctx, newJob("j2", 2), jobs.CreateLimits{MaxUnfinished: 2}); err != nil || !created {
 		t.Fatalf("CreateJob after a job finished: %v; want room", err)
 	}
 }
@@ -701,9 +707,9 @@ func testTerminal(t *testing.T, s jobs.Store) {
 			t.Fatalf("claim on finished job %s = %d; want -1", id, b)
 		}
 	}
-	ids, err := s.ClaimableJobs(ctx, 10)
-	if err != nil || fmt.Sprint(ids) != "[d]" {
-		t.Fatalf("ClaimableJobs = %v, %v; want [d]", ids, err)
+	cl, err := s.ClaimableJobs(ctx, 10)
+	if err != nil || fmt.Sprint(idsOf(cl)) != "[d]" {
+		t.Fatalf("ClaimableJobs = %v, %v; want [d]", cl, err)
 	}
 	if q, r, err := s.Unfinished(ctx); err != nil || q != 1 || r != 0 {
 		t.Fatalf("Unfinished = %d, %d, %v; want 1, 0", q, r, err)
@@ -732,7 +738,7 @@ func testRetention(t *testing.T, s jobs.Store) {
 	}
 	again := newJob("again", 2)
 	again.IdempotencyKey = "k"
-	if _, created, err := s.CreateJob(ctx, again, 0); err != nil || !created {
+	if _, created, err := s.CreateJob(ctx, again, jobs.CreateLimits{}); err != nil || !created {
 		t.Fatalf("the key of an expired job still refers to it: created %v, %v", created, err)
 	}
 }
@@ -831,16 +837,257 @@ func testPriorityOrder(t *testing.T, s jobs.Store) {
 		mustCreate(t, s, j)
 	}
 	finish(t, s, "j5", jobs.StateSucceeded)
-	ids, err := s.ClaimableJobs(ctx, 10)
+	cl, err := s.ClaimableJobs(ctx, 10)
 	if err != nil {
 		t.Fatal(err)
 	}
 	want := []string{"j1", "j3", "j2", "j4", "j0"}
-	if fmt.Sprint(ids) != fmt.Sprint(want) {
-		t.Fatalf("ClaimableJobs = %v; want %v (high first, oldest first within a priority)", ids, want)
+	if fmt.Sprint(idsOf(cl)) != fmt.Sprint(want) {
+		t.Fatalf("ClaimableJobs = %v; want %v (high first, oldest first within a priority)", cl, want)
 	}
-	ids, err = s.ClaimableJobs(ctx, 2)
-	if err != nil || fmt.Sprint(ids) != fmt.Sprint(want[:2]) {
-		t.Fatalf("ClaimableJobs(limit 2) = %v, %v; want %v", ids, err, want[:2])
+	wantPrio := []jobs.Priority{jobs.PriorityHigh, jobs.PriorityHigh, jobs.PriorityNormal, jobs.PriorityNormal, jobs.PriorityLow}
+	for i, c := range cl {
+		if c.Priority != wantPrio[i] || c.Tenant != "" {
+			t.Fatalf("ClaimableJobs[%d] = %+v; want priority %v of the open tenant", i, c, wantPrio[i])
+		}
+	}
+	cl, err = s.ClaimableJobs(ctx, 2)
+	if err != nil || fmt.Sprint(idsOf(cl)) != fmt.Sprint(want[:2]) {
+		t.Fatalf("ClaimableJobs(limit 2) = %v, %v; want %v", cl, err, want[:2])
+	}
+}
+
+func idsOf(cl []jobs.Claimable) []string {
+	ids := make([]string, len(cl))
+	for i, c := range cl {
+		ids[i] = c.ID
+	}
+	return ids
+}
+
+// tenantJob is newJob owned by tenant.
+func tenantJob(tenant, id string, i int) *jobs.Job {
+	j := newJob(id, i)
+	j.Tenant = tenant
+	return j
+}
+
+// listPages pages through ListJobs(tenant) two at a time.
+func listPages(t *testing.T, s jobs.Store, tenant string) [][]string {
+	t.Helper()
+	var pages [][]string
+	after := ""
+	for range 10 {
+		js, err := s.ListJobs(ctxFor(t), tenant, after, 2)
+		if err != nil {
+			t.Fatalf("ListJobs(%q): %v", tenant, err)
+		}
+		if len(js) == 0 {
+			break
+		}
+		var ids []string
+		for _, j := range js {
+			if tenant != jobs.AllTenants && j.Tenant != tenant {
+				t.Fatalf("ListJobs(%q) returned job %s of tenant %q", tenant, j.ID, j.Tenant)
+			}
+			ids = append(ids, j.ID)
+		}
+		pages = append(pages, ids)
+		after = js[len(js)-1].ID
+	}
+	return pages
+}
+
+func testTenantListing(t *testing.T, s jobs.Store) {
+	ctx := ctxFor(t)
+	owners := []string{"acme", "", "birch", "acme", "acme", "", "birch", "acme"}
+	for i, tn := range owners {
+		mustCreate(t, s, tenantJob(tn, fmt.Sprint("j", i), i))
+	}
+	for _, c := range []struct {
+		tenant string
+		want   string
+	}{
+		{"acme", "[[j7 j4] [j3 j0]]"},
+		{"", "[[j5 j1]]"},
+		{"birch", "[[j6 j2]]"},
+		{"nobody", "[]"},
+		{jobs.AllTenants, "[[j7 j6] [j5 j4] [j3 j2] [j1 j0]]"},
+	} {
+		if got := fmt.Sprint(listPages(t, s, c.tenant)); got != c.want {
+			t.Fatalf("ListJobs(%q) pages = %s; want %s", c.tenant, got, c.want)
+		}
+	}
+	// A page token of another tenant's job opens nothing of that tenant.
+	js, err := s.ListJobs(ctx, "birch", "j4", 10)
+	if err != nil || len(js) != 0 {
+		t.Fatalf("ListJobs(birch, after acme's j4) = %d jobs, %v; want none", len(js), err)
+	}
+	// Finished jobs stay listed; an expired one leaves every listing.
+	finish(t, s, "j4", jobs.StateSucceeded)
+	if got := fmt.Sprint(listPages(t, s, "acme")); got != "[[j7 j4] [j3 j0]]" {
+		t.Fatalf("ListJobs(acme) after j4 finished = %s", got)
+	}
+	if _, _, err := s.CreateJob(ctx, tenantJob(jobs.AllTenants, "jx", 9), jobs.CreateLimits{}); err == nil {
+		t.Fatalf("CreateJob for tenant %q succeeded; want an error (it stands for all tenants)", jobs.AllTenants)
+	}
+}
+
+func testTenantQuota(t *testing.T, s jobs.Store) {
+	ctx := ctxFor(t)
+	lim := jobs.CreateLimits{MaxUnfinished: 4, TenantMaxUnfinished: 2}
+	create := func(tenant, id string, i int) error {
+		t.Helper()
+		_, created, err := s.CreateJob(ctx, tenantJob(tenant, id, i), lim)
+		if err == nil && !created {
+			t.Fatalf("CreateJob(%s) did not create", id)
+		}
+		return err
+	}
+	for i, id := range []string{"a0", "a1"} {
+		if err := create("acme", id, i); err != nil {
+			t.Fatalf("CreateJob(%s) within acme's quota: %v", id, err)
+		}
+	}
+	err := create("acme", "a2", 2)
+	if !errors.Is(err, jobs.ErrQuotaExceeded) || errors.Is(err, jobs.ErrQueueFull) {
+		t.Fatalf("acme's third unfinished job with a quota of 2: %v; want ErrQuotaExceeded", err)
+	}
+	// The message names the quota and its value.
+	if msg := err.Error(); !strings.Contains(msg, "max_unfinished") || !strings.Contains(msg, "2") || !strings.Contains(msg, "acme") {
+		t.Fatalf("quota error %q does not name the quota, its value and the tenant", msg)
+	}
+	if _, err := s.GetJob(ctx, "a2"); !errors.Is(err, jobs.ErrNotFound) {
+		t.Fatalf("a job refused by the quota was stored: %v", err)
+	}
+	// Other tenants have quotas of their own.
+	for i, id := range []string{"b0", "b1"} {
+		if err := create("birch", id, 3+i); err != nil {
+			t.Fatalf("CreateJob(%s) of birch while acme is at its quota: %v", id, err)
+		}
+	}
+	// All tenants together are at MaxUnfinished: the queue is full.
+	if err := create("", "o0", 5); !errors.Is(err, jobs.ErrQueueFull) {
+		t.Fatalf("fifth unfinished job with MaxUnfinished 4: %v; want ErrQueueFull", err)
+	}
+	for _, c := range []struct {
+		tenant        string
+		queued, runng int
+	}{{"acme", 2, 0}, {"birch", 2, 0}, {"", 0, 0}, {"nobody", 0, 0}, {jobs.AllTenants, 4, 0}} {
+		q, r, err := s.UnfinishedOf(ctx, c.tenant)
+		if err != nil || q != c.queued || r != c.runng {
+			t.Fatalf("UnfinishedOf(%q) = %d, %d, %v; want %d, %d", c.tenant, q, r, err, c.queued, c.runng)
+		}
+	}
+	if _, err := s.UpdateJob(ctx, "a0", func(j *jobs.Job) error { j.State = jobs.StateRunning; return nil }); err != nil {
+		t.Fatal(err)
+	}
+	if q, r, err := s.UnfinishedOf(ctx, "acme"); err != nil || q != 1 || r != 1 {
+		t.Fatalf("UnfinishedOf(acme) with one running = %d, %d, %v; want 1, 1", q, r, err)
+	}
+	// A running job still counts; a finished one does not.
+	if err := create("acme", "a2", 6); !errors.Is(err, jobs.ErrQuotaExceeded) {
+		t.Fatalf("acme at its quota with a job running: %v; want ErrQuotaExceeded", err)
+	}
+	finish(t, s, "a0", jobs.StateCancelled)
+	if err := create("acme", "a2", 7); err != nil {
+		t.Fatalf("CreateJob after one of acme's jobs finished: %v; want room", err)
+	}
+	if q, r, err := s.Unfinished(ctx); err != nil || q != 4 || r != 0 {
+		t.Fatalf("Unfinished = %d, %d, %v; want 4, 0", q, r, err)
+	}
+}
+
+func testTenantIdempotency(t *testing.T, s jobs.Store) {
+	ctx := ctxFor(t)
+	a := tenantJob("acme", "ja", 0)
+	a.IdempotencyKey = "nightly-report"
+	mustCreate(t, s, a)
+	// The same key in another tenant, and in the open tenant, makes new jobs.
+	b := tenantJob("birch", "jb", 1)
+	b.IdempotencyKey = "nightly-report"
+	if got, created, err := s.CreateJob(ctx, b, jobs.CreateLimits{}); err != nil || !created || got.ID != "jb" || got.Tenant != "birch" {
+		t.Fatalf("CreateJob with acme's key for birch = %+v created %v, %v; want a new job jb", got, created, err)
+	}
+	o := tenantJob("", "jo", 2)
+	o.IdempotencyKey = "nightly-report"
+	if _, created, err := s.CreateJob(ctx, o, jobs.CreateLimits{}); err != nil || !created {
+		t.Fatalf("CreateJob with acme's key for the open tenant = created %v, %v; want a new job", created, err)
+	}
+	// Within a tenant the key still finds the tenant's own job.
+	for _, c := range []struct{ tenant, id, want string }{{"acme", "ja2", "ja"}, {"birch", "jb2", "jb"}, {"", "jo2", "jo"}} {
+		again := tenantJob(c.tenant, c.id, 3)
+		again.IdempotencyKey = "nightly-report"
+		got, created, err := s.CreateJob(ctx, again, jobs.CreateLimits{})
+		if err != nil || created || got.ID != c.want {
+			t.Fatalf("CreateJob(%q) with its used key = %v created %v, %v; want %s", c.tenant, got, created, err, c.want)
+		}
+	}
+	// A key keeps finding its job when the tenant is at its quota.
+	again := tenantJob("acme", "ja3", 4)
+	again.IdempotencyKey = "nightly-report"
+	if got, created, err := s.CreateJob(ctx, again, jobs.CreateLimits{TenantMaxUnfinished: 1}); err != nil || created || got.ID != "ja" {
+		t.Fatalf("CreateJob with a used key at the tenant's quota = %v created %v, %v; want ja", got, created, err)
+	}
+}
+
+func testTenantClaimable(t *testing.T, s jobs.Store) {
+	ctx := ctxFor(t)
+	jobsOf := []struct {
+		tenant string
+		prio   jobs.Priority
+	}{
+		{"birch", jobs.PriorityLow}, {"acme", jobs.PriorityNormal}, {"acme", jobs.PriorityHigh}, {"", jobs.PriorityNormal},
+		{"acme", jobs.PriorityNormal}, {"birch", jobs.PriorityHigh}, {"acme", jobs.PriorityLow}, {"birch", jobs.PriorityNormal},
+	}
+	for i, c := range jobsOf {
+		j := tenantJob(c.tenant, fmt.Sprint("j", i), i)
+		j.Priority = c.prio
+		mustCreate(t, s, j)
+	}
+	finish(t, s, "j7", jobs.StateFailed)
+	format := func(cl []jobs.Claimable) string {
+		var b strings.Builder
+		for _, c := range cl {
+			fmt.Fprintf(&b, "%s/%s/%s ", c.Tenant, c.ID, c.Priority)
+		}
+		return strings.TrimSpace(b.String())
+	}
+	cl, err := s.ClaimableJobs(ctx, 0)
+	want := "/j3/normal acme/j2/high acme/j1/normal acme/j4/normal acme/j6/low birch/j5/high birch/j0/low"
+	if err != nil || format(cl) != want {
+		t.Fatalf("ClaimableJobs(all) = %s, %v;\nwant %s (tenants in name order, each by priority then age)", format(cl), err, want)
+	}
+	// The limit applies to each tenant, so that a tenant with a long
+	// queue cannot hide the others' jobs.
+	cl, err = s.ClaimableJobs(ctx, 2)
+	want = "/j3/normal acme/j2/high acme/j1/normal birch/j5/high birch/j0/low"
+	if err != nil || format(cl) != want {
+		t.Fatalf("ClaimableJobs(2) = %s, %v;\nwant %s", format(cl), err, want)
+	}
+}
+
+func testTenantFixed(t *testing.T, s jobs.Store) {
+	ctx := ctxFor(t)
+	mustCreate(t, s, tenantJob("acme", "j", 0))
+	got, err := s.UpdateJob(ctx, "j", func(j *jobs.Job) error {
+		j.Tenant = "birch"
+		j.State = jobs.StateRunning
+		return nil
+	})
+	if err != nil || got.Tenant != "acme" {
+		t.Fatalf("UpdateJob moving the job to another tenant = %+v, %v; want the tenant kept", got, err)
+	}
+	if j, err := s.GetJob(ctx, "j"); err != nil || j.Tenant != "acme" || j.State != jobs.StateRunning {
+		t.Fatalf("GetJob after the update = %+v, %v; want acme's running job", j, err)
+	}
+	if q, r, err := s.UnfinishedOf(ctx, "acme"); err != nil || q != 0 || r != 1 {
+		t.Fatalf("UnfinishedOf(acme) = %d, %d, %v; want 0, 1", q, r, err)
+	}
+	if q, r, err := s.UnfinishedOf(ctx, "birch"); err != nil || q != 0 || r != 0 {
+		t.Fatalf("UnfinishedOf(birch) = %d, %d, %v; want 0, 0", q, r, err)
+	}
+	if got := fmt.Sprint(listPages(t, s, "birch")); got != "[]" {
+		t.Fatalf("ListJobs(birch) = %s; want none", got)
 	}
 }

@@ -5,6 +5,11 @@
 // memory with the caller and carries only what survives encoding. Leases
 // are timed by an injectable clock; finished jobs expire after their
 // retention; notifications go to one-slot channels that coalesce signals.
+//
+// Jobs are indexed by tenant: each tenant has its own creation-ordered
+// list (ListJobs), its own set of unfinished jobs (ClaimableJobs, quotas)
+// and its own idempotency keys, so that what one tenant does costs another
+// tenant's calls nothing.
 package memstore
 
 import (
@@ -38,14 +43,26 @@ type Store struct {
 	margin time.Duration
 	closed bool
 
-	models map[string][]modelVersion
-	jobs   map[string]*entry
-	idem   map[string]string // idempotency key -> job ID
-	seq    int64
-	expiry expiryHeap
-	queued int
-	runs   int
-	subs   map[string]map[*sub]struct{}
+	models  map[string][]modelVersion
+	jobs    map[string]*entry
+	idem    map[idemKey]string // idempotency key of a tenant -> job ID
+	seq     int64
+	expiry  expiryHeap
+	all     index              // every job, in creation order
+	tenants map[string]*tenant // tenants with kept jobs
+	queued  int
+	runs    int
+	subs    map[string]map[*sub]struct{}
+}
+
+type idemKey struct{ tenant, key string }
+
+// tenant holds the indexes of one tenant's jobs.
+type tenant struct {
+	jobs       index               // kept jobs, in creation order
+	unfinished map[*entry]struct{} // queued and running jobs
+	queued     int
+	runs       int
 }
 
 var _ jobs.Store = (*Store)(nil)
@@ -57,11 +74,13 @@ type modelVersion struct {
 
 type entry struct {
 	id       string
+	tenant   string
 	data     []byte // the job record as JSON
 	state    jobs.State
 	priority jobs.Priority
 	seq      int64
-	key      string    // idempotency key
+	key      string    // idempotency key (of the entry's tenant)
+	gone     bool      // expired: left in indexes until they are compacted
 	expires  time.Time // zero until the job is finished
 	blocks   map[int64]*block
 	next     int64 // the next block never handed out
@@ -83,7 +102,7 @@ func New(opt Options) *Store {
 	return &Store{
 		now: opt.Clock, margin: max(0, opt.SkewMargin),
 		models: map[string][]modelVersion{}, jobs: map[string]*entry{},
-		idem: map[string]string{}, subs: map[string]map[*sub]struct{}{},
+		idem: map[idemKey]string{}, tenants: map[string]*tenant{}, subs: map[string]map[*sub]struct{}{},
 	}
 }
 
@@ -197,7 +216,7 @@ func (s *Store) DeleteModel(ctx context.Context, name string) error {
 }
 
 // CreateJob implements jobs.JobStore.
-func (s *Store) CreateJob(ctx context.Context, j *jobs.Job, maxUnfinished int) (*jobs.Job, bool, error) {
+func (s *Store) CreateJob(ctx context.Context, j *jobs.Job, lim jobs.CreateLimits) (*jobs.Job, bool, error) {
 	if err := s.lock(ctx); err != nil {
 		return nil, false, err
 	}
@@ -205,8 +224,12 @@ func (s *Store) CreateJob(ctx context.Context, j *jobs.Job, maxUnfinished int) (
 	if j.ID == "" {
 		return nil, false, fmt.Errorf("memstore: create job: the job has no ID")
 	}
+	if j.Tenant == jobs.AllTenants {
+		return nil, false, fmt.Errorf("memstore: create job %q: tenant %q stands for all tenants and cannot own a job", j.ID, j.Tenant)
+	}
+	ik := idemKey{j.Tenant, j.IdempotencyKey}
 	if j.IdempotencyKey != "" {
-		if id, ok := s.idem[j.IdempotencyKey]; ok {
+		if id, ok := s.idem[ik]; ok {
 			stored, err := decode(s.jobs[id].data)
 			return stored, false, err
 		}
@@ -214,7 +237,14 @@ func (s *Store) CreateJob(ctx context.Context, j *jobs.Job, maxUnfinished int) (
 	if _, dup := s.jobs[j.ID]; dup {
 		return nil, false, fmt.Errorf("memstore: create job %q: %w: the ID is taken", j.ID, jobs.ErrConflict)
 	}
-	if maxUnfinished > 0 && s.queued+s.runs >= maxUnfinished {
+	t := s.tenants[j.Tenant]
+	if t == nil {
+		t = &tenant{unfinished: map[*entry]struct{}{}}
+	}
+	if n := t.queued + t.runs; lim.TenantMaxUnfinished > 0 && n >= lim.TenantMaxUnfinished {
+		return nil, false, fmt.Errorf("memstore: create job: %w", jobs.TenantQuotaError(j.Tenant, n, lim.TenantMaxUnfinished))
+	}
+	if lim.MaxUnfinished > 0 && s.queued+s.runs >= lim.MaxUnfinished {
 		return nil, false, fmt.Errorf("memstore: %w (%d unfinished jobs)", jobs.ErrQueueFull, s.queued+s.runs)
 	}
 	c := *j
@@ -224,11 +254,14 @@ func (s *Store) CreateJob(ctx context.Context, j *jobs.Job, maxUnfinished int) (
 		return nil, false, fmt.Errorf("memstore: encode job: %w", err)
 	}
 	s.seq++
-	e := &entry{id: c.ID, data: data, state: c.State, priority: c.Priority, seq: s.seq, key: c.IdempotencyKey, blocks: map[int64]*block{}}
+	e := &entry{id: c.ID, tenant: c.Tenant, data: data, state: c.State, priority: c.Priority, seq: s.seq, key: c.IdempotencyKey, blocks: map[int64]*block{}}
+	s.tenants[c.Tenant] = t
 	s.jobs[c.ID] = e
-	s.queued++
+	s.all.add(e)
+	t.jobs.add(e)
+	s.count(e, +1)
 	if e.key != "" {
-		s.idem[e.key] = e.id
+		s.idem[ik] = e.id
 	}
 	stored, err := decode(data)
 	return stored, true, err
@@ -249,36 +282,34 @@ func (s *Store) GetJob(ctx context.Context, id string) (*jobs.Job, error) {
 
 // ListJobs implements jobs.JobStore. A job `after` that no longer exists
 // gives an empty page.
-func (s *Store) ListJobs(ctx context.Context, after string, limit int) ([]*jobs.Job, error) {
+func (s *Store) ListJobs(ctx context.Context, tenant, after string, limit int) ([]*jobs.Job, error) {
 	if err := s.lock(ctx); err != nil {
 		return nil, err
 	}
 	defer s.mu.Unlock()
+	ix := &s.all
+	if tenant != jobs.AllTenants {
+		t, ok := s.tenants[tenant]
+		if !ok {
+			return nil, nil
+		}
+		ix = &t.jobs
+	}
 	var below int64 = 1<<63 - 1
 	if after != "" {
 		e, ok := s.jobs[after]
-		if !ok {
+		if !ok || tenant != jobs.AllTenants && e.tenant != tenant {
 			return nil, nil
 		}
 		below = e.seq
 	}
-	es := make([]*entry, 0, len(s.jobs))
-	for _, e := range s.jobs {
-		if e.seq < below {
-			es = append(es, e)
-		}
-	}
-	sort.Slice(es, func(a, b int) bool { return es[a].seq > es[b].seq })
-	if limit > 0 && len(es) > limit {
-		es = es[:limit]
-	}
-	out := make([]*jobs.Job, len(es))
-	for i, e := range es {
+	var out []*jobs.Job
+	for _, e := range ix.before(below, limit) {
 		j, err := decode(e.data)
 		if err != nil {
 			return nil, err
 		}
-		out[i] = j
+		out = append(out, j)
 	}
 	return out, nil
 }
@@ -300,14 +331,14 @@ func (s *Store) UpdateJob(ctx context.Context, id string, fn func(*jobs.Job) err
 	if err := fn(cur); err != nil {
 		return nil, err
 	}
-	cur.ID = id
+	cur.ID, cur.Tenant = id, e.tenant
 	data, err := json.Marshal(cur)
 	if err != nil {
 		return nil, fmt.Errorf("memstore: encode job %q: %w", id, err)
 	}
-	s.count(e.state, -1)
-	s.count(cur.State, +1)
+	s.count(e, -1)
 	e.data, e.state, e.priority = data, cur.State, cur.Priority
+	s.count(e, +1)
 	if cur.State.Terminal() {
 		exp := s.now().Add(cur.Retention)
 		if cur.Retention <= 0 {
@@ -325,50 +356,80 @@ func (s *Store) UpdateJob(ctx context.Context, id string, fn func(*jobs.Job) err
 	return decode(data)
 }
 
-func (s *Store) count(st jobs.State, d int) {
-	switch st {
+// count adds d to the counts of e's state, and keeps e in its tenant's
+// set of unfinished jobs while it is unfinished.
+func (s *Store) count(e *entry, d int) {
+	t := s.tenants[e.tenant]
+	switch e.state {
 	case jobs.StateQueued:
 		s.queued += d
+		t.queued += d
 	case jobs.StateRunning:
 		s.runs += d
+		t.runs += d
+	default:
+		return
+	}
+	if d > 0 {
+		t.unfinished[e] = struct{}{}
+	} else {
+		delete(t.unfinished, e)
 	}
 }
 
 // Unfinished implements jobs.JobStore.
 func (s *Store) Unfinished(ctx context.Context) (int, int, error) {
+	return s.UnfinishedOf(ctx, jobs.AllTenants)
+}
+
+// UnfinishedOf implements jobs.JobStore.
+func (s *Store) UnfinishedOf(ctx context.Context, tenant string) (int, int, error) {
 	if err := s.lock(ctx); err != nil {
 		return 0, 0, err
 	}
 	defer s.mu.Unlock()
-	return s.queued, s.runs, nil
+	if tenant == jobs.AllTenants {
+		return s.queued, s.runs, nil
+	}
+	if t, ok := s.tenants[tenant]; ok {
+		return t.queued, t.runs, nil
+	}
+	return 0, 0, nil
 }
 
 // ClaimableJobs implements jobs.WorkQueue.
-func (s *Store) ClaimableJobs(ctx context.Context, limit int) ([]string, error) {
+func (s *Store) ClaimableJobs(ctx context.Context, limit int) ([]jobs.Claimable, error) {
 	if err := s.lock(ctx); err != nil {
 		return nil, err
 	}
 	defer s.mu.Unlock()
-	es := make([]*entry, 0, s.queued+s.runs)
-	for _, e := range s.jobs {
-		if !e.state.Terminal() {
+	names := make([]string, 0, len(s.tenants))
+	for name, t := range s.tenants {
+		if len(t.unfinished) > 0 {
+			names = append(names, name)
+		}
+	}
+	sort.Strings(names)
+	var out []jobs.Claimable
+	for _, name := range names {
+		es := make([]*entry, 0, len(s.tenants[name].unfinished))
+		for e := range s.tenants[name].unfinished {
 			es = append(es, e)
 		}
-	}
-	sort.Slice(es, func(a, b int) bool {
-		if es[a].priority != es[b].priority {
-			return es[a].priority > es[b].priority
+		sort.Slice(es, func(a, b int) bool {
+			if es[a].priority != es[b].priority {
+				return es[a].priority > es[b].priority
+			}
+			return es[a].seq < es[b].seq
+		})
+		if limit > 0 && len(es) > limit {
+			es = es[:limit]
 		}
-		return es[a].seq < es[b].seq
-	})
-	if limit > 0 && len(es) > limit {
-		es = es[:limit]
+		for _, e := range es {
+			out = append(out, jobs.Claimable{ID: e.id, Tenant: e.tenant, Priority: e.priority})
+		}
 	}
-	ids := make([]string, len(es))
-	for i, e := range es {
-		ids[i] = e.id
-	}
-	return ids, nil
+	return out, nil
 }
 
 // ClaimBlock implements jobs.WorkQueue: released blocks and blocks whose
@@ -570,8 +631,15 @@ func (s *Store) purge(now time.Time) {
 			continue // superseded
 		}
 		delete(s.jobs, it.id)
-		if e.key != "" && s.idem[e.key] == it.id {
-			delete(s.idem, e.key)
+		if ik := (idemKey{e.tenant, e.key}); e.key != "" && s.idem[ik] == it.id {
+			delete(s.idem, ik)
+		}
+		e.gone = true
+		s.all.drop()
+		t := s.tenants[e.tenant]
+		t.jobs.drop()
+		if t.jobs.live() == 0 {
+			delete(s.tenants, e.tenant)
 		}
 	}
 }
@@ -582,6 +650,49 @@ func decode(data []byte) (*jobs.Job, error) {
 		return nil, fmt.Errorf("memstore: decode job: %w", err)
 	}
 	return j, nil
+}
+
+// index lists entries in creation order. Expired entries are marked gone
+// and left in place until they make up half of the list, so that removal
+// costs amortised O(1).
+type index struct {
+	es   []*entry
+	dead int
+}
+
+func (ix *index) add(e *entry) { ix.es = append(ix.es, e) }
+
+// live counts the entries not gone.
+func (ix *index) live() int { return len(ix.es) - ix.dead }
+
+// drop records that one of the entries is now gone, compacting the list
+// when half of it is.
+func (ix *index) drop() {
+	ix.dead++
+	if ix.dead*2 < len(ix.es) {
+		return
+	}
+	kept := ix.es[:0]
+	for _, e := range ix.es {
+		if !e.gone {
+			kept = append(kept, e)
+		}
+	}
+	clear(ix.es[len(kept):])
+	ix.es, ix.dead = kept, 0
+}
+
+// before returns up to limit entries (all when limit <= 0) created before
+// sequence number below, newest first.
+func (ix *index) before(below int64, limit int) []*entry {
+	i := sort.Search(len(ix.es), func(i int) bool { return ix.es[i].seq >= below })
+	var out []*entry
+	for i--; i >= 0 && (limit <= 0 || len(out) < limit); i-- {
+		if e := ix.es[i]; !e.gone {
+			out = append(out, e)
+		}
+	}
+	return out
 }
 
 type expiryItem struct {

@@ -3,6 +3,7 @@ package memstore_test
 import (
 	"context"
 	"errors"
+	"fmt"
 	"testing"
 	"time"
 
@@ -31,7 +32,7 @@ func TestLeaseClock(t *testing.T) {
 	clock := jobstest.NewClock(time.Date(2030, 1, 1, 0, 0, 0, 0, time.UTC))
 	const lease, margin = 10 * time.Second, 2 * time.Second
 	s := memstore.New(memstore.Options{Clock: clock.Now, SkewMargin: margin})
-	if _, _, err := s.CreateJob(ctx, newJob("j"), 0); err != nil {
+	if _, _, err := s.CreateJob(ctx, newJob("j"), jobs.CreateLimits{}); err != nil {
 		t.Fatal(err)
 	}
 	if b, _ := s.ClaimBlock(ctx, "j", "w1", 1, lease); b != 0 {
@@ -64,7 +65,7 @@ func TestRetentionClock(t *testing.T) {
 	s := memstore.New(memstore.Options{Clock: clock.Now})
 	j := newJob("j")
 	j.Retention = time.Hour
-	if _, _, err := s.CreateJob(ctx, j, 0); err != nil {
+	if _, _, err := s.CreateJob(ctx, j, jobs.CreateLimits{}); err != nil {
 		t.Fatal(err)
 	}
 	clock.Advance(5 * time.Hour) // unfinished jobs never expire
@@ -79,7 +80,7 @@ func TestRetentionClock(t *testing.T) {
 	if _, err := s.GetJob(ctx, "j"); !errors.Is(err, jobs.ErrNotFound) {
 		t.Fatalf("GetJob after retention: %v; want ErrNotFound", err)
 	}
-	if js, _ := s.ListJobs(ctx, "", 10); len(js) != 0 {
+	if js, _ := s.ListJobs(ctx, jobs.AllTenants, "", 10); len(js) != 0 {
 		t.Fatalf("ListJobs lists an expired job")
 	}
 }
@@ -108,5 +109,58 @@ func TestSubscribeContext(t *testing.T) {
 			t.Fatal(err)
 		}
 		cancel()
+	}
+}
+
+// Listings stay right as expired jobs leave the per-tenant indexes (which
+// compact themselves once half of an index has expired).
+func TestTenantIndexesAfterExpiry(t *testing.T) {
+	ctx := context.Background()
+	clock := jobstest.NewClock(time.Date(2030, 1, 1, 0, 0, 0, 0, time.UTC))
+	s := memstore.New(memstore.Options{Clock: clock.Now})
+	const n = 100
+	want := map[string][]string{}
+	for i := range n {
+		j := newJob(fmt.Sprintf("j%03d", i))
+		j.Tenant = []string{"acme", "birch"}[i%2]
+		if _, _, err := s.CreateJob(ctx, j, jobs.CreateLimits{}); err != nil {
+			t.Fatal(err)
+		}
+		// Every job of acme and every third of birch finishes and expires.
+		if j.Tenant == "acme" || i%3 == 0 {
+			if _, err := s.UpdateJob(ctx, j.ID, func(j *jobs.Job) error { j.State = jobs.StateSucceeded; return nil }); err != nil {
+				t.Fatal(err)
+			}
+			continue
+		}
+		want[j.Tenant] = append([]string{j.ID}, want[j.Tenant]...)
+		want[jobs.AllTenants] = append([]string{j.ID}, want[jobs.AllTenants]...)
+	}
+	clock.Advance(2 * time.Hour)
+	for _, tenant := range []string{"acme", "birch", jobs.AllTenants} {
+		var got []string
+		after := ""
+		for {
+			js, err := s.ListJobs(ctx, tenant, after, 7)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if len(js) == 0 {
+				break
+			}
+			for _, j := range js {
+				got = append(got, j.ID)
+			}
+			after = js[len(js)-1].ID
+		}
+		if fmt.Sprint(got) != fmt.Sprint(want[tenant]) {
+			t.Fatalf("ListJobs(%q) after expiry = %v; want %v", tenant, got, want[tenant])
+		}
+	}
+	if q, r, err := s.UnfinishedOf(ctx, "birch"); err != nil || q != len(want["birch"]) || r != 0 {
+		t.Fatalf("UnfinishedOf(birch) = %d, %d, %v; want %d, 0", q, r, err, len(want["birch"]))
+	}
+	if cl, err := s.ClaimableJobs(ctx, 0); err != nil || len(cl) != len(want["birch"]) {
+		t.Fatalf("ClaimableJobs = %d, %v; want %d", len(cl), err, len(want["birch"]))
 	}
 }

@@ -1,9 +1,11 @@
 // Package redistest gives tests a real Redis: the server named by the
 // REDIS_URL environment variable, or a private redis-server process on a
 // free loopback port with a temporary data directory, stopped when the
-// test ends. When neither is possible the test is skipped with a loud
-// reason, except under CI=true, where it fails: CI must not pass by
-// skipping the Redis tests.
+// test ends; and a real Redis Cluster: the one named by REDIS_CLUSTER_URL,
+// or private redis-server processes joined by redis-cli (cluster.go).
+// When neither is possible the test is skipped with a loud reason, except
+// under CI=true, where it fails: CI must not pass by skipping the Redis
+// tests.
 package redistest
 
 import (
@@ -75,6 +77,10 @@ type Server struct {
 	port int
 	opt  Options
 
+	// busPort is the cluster bus port of a cluster node; 0 for a
+	// standalone server.
+	busPort int
+
 	mu   sync.Mutex
 	cmd  *exec.Cmd
 	exit chan struct{} // closed when cmd has exited
@@ -87,7 +93,14 @@ type Server struct {
 // redis-server binary can be found.
 func StartServer(t testing.TB, opt Options) *Server {
 	t.Helper()
-	bin := findBinary()
+	return startServer(t, opt, false)
+}
+
+// startServer starts a private redis-server; a cluster node gets a free
+// cluster bus port too.
+func startServer(t testing.TB, opt Options, clusterNode bool) *Server {
+	t.Helper()
+	bin := findBinary("redis-server")
 	if bin == "" {
 		unavailable(t, "no redis-server binary in PATH or /usr/bin, /usr/local/bin")
 	}
@@ -100,6 +113,11 @@ func StartServer(t testing.TB, opt Options) *Server {
 			t.Fatalf("redistest: free port: %v", err)
 		}
 		s.port = port
+		if clusterNode {
+			if s.busPort, err = freePort(); err != nil {
+				t.Fatalf("redistest: free port: %v", err)
+			}
+		}
 		if lastErr = s.start(); lastErr == nil {
 			return s
 		}
@@ -118,11 +136,13 @@ func unavailable(t testing.TB, why string) {
 	t.Skip(msg)
 }
 
-func findBinary() string {
-	if p, err := exec.LookPath("redis-server"); err == nil {
+// findBinary looks for a Redis program in PATH and the usual places.
+func findBinary(name string) string {
+	if p, err := exec.LookPath(name); err == nil {
 		return p
 	}
-	for _, p := range []string{"/usr/bin/redis-server", "/usr/local/bin/redis-server"} {
+	for _, dir := range []string{"/usr/bin", "/usr/local/bin"} {
+		p := dir + "/" + name
 		if fi, err := os.Stat(p); err == nil && !fi.IsDir() {
 			return p
 		}
@@ -159,6 +179,10 @@ func (s *Server) args() []string {
 		"--dir", s.dir,
 		"--daemonize", "no",
 		"--logfile", "",
+	}
+	if s.busPort != 0 {
+		a = append(a, "--cluster-enabled", "yes", "--cluster-config-file", "nodes.conf",
+			"--cluster-port", strconv.Itoa(s.busPort), "--cluster-node-timeout", "2000")
 	}
 	if s.opt.AppendOnly {
 		a = append(a, "--appendonly", "yes", "--appendfsync", "everysec")
@@ -264,36 +288,60 @@ func (s *Server) StartAgain() {
 
 // KeyPrefix returns a key prefix unique to the test, so tests sharing a
 // Redis do not collide. At the end of the test the keys under it are
-// deleted (best effort), which matters on a shared REDIS_URL server.
+// deleted (best effort), which matters on a shared REDIS_URL server or
+// REDIS_CLUSTER_URL cluster; url may name either.
 func KeyPrefix(t testing.TB, url string) string {
 	t.Helper()
 	name := strings.NewReplacer("/", "_", " ", "_", "{", "_", "}", "_").Replace(t.Name())
 	p := "test:" + name + ":" + rand.Text()[:8]
-	t.Cleanup(func() {
-		opt, err := redis.ParseURL(url)
-		if err != nil {
-			return
+	t.Cleanup(func() { deleteKeys(url, p+":*") })
+	return p
+}
+
+// deleteKeys deletes the keys matching pattern on the server at url, or on
+// every primary of the cluster that url names (best effort, bounded).
+func deleteKeys(url, pattern string) {
+	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
+	defer cancel()
+	scanDelete := func(ctx context.Context, node, all redis.Cmdable) error {
+		iter := node.Scan(ctx, 0, pattern, 500).Iterator()
+		var batch []string
+		flush := func() {
+			// One DEL per key: on a cluster the keys live in many slots.
+			pipe := all.Pipeline()
+			for _, k := range batch {
+				pipe.Del(ctx, k)
+			}
+			_, _ = pipe.Exec(ctx)
+			batch = batch[:0]
 		}
+		for iter.Next(ctx) {
+			if batch = append(batch, iter.Val()); len(batch) == 500 {
+				flush()
+			}
+		}
+		if len(batch) > 0 {
+			flush()
+		}
+		return iter.Err()
+	}
+	if opt, err := redis.ParseURL(url); err == nil {
 		opt.DialTimeout, opt.ReadTimeout, opt.MaxRetries, opt.DialerRetries = time.Second, time.Second, -1, 1
 		opt.DisableIdentity = true
 		rdb := redis.NewClient(opt)
 		defer rdb.Close()
-		ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
-		defer cancel()
-		iter := rdb.Scan(ctx, 0, p+":*", 500).Iterator()
-		var batch []string
-		for iter.Next(ctx) {
-			batch = append(batch, iter.Val())
-			if len(batch) == 500 {
-				rdb.Del(ctx, batch...)
-				batch = batch[:0]
-			}
-		}
-		if len(batch) > 0 {
-			rdb.Del(ctx, batch...)
-		}
-	})
-	return p
+		_ = scanDelete(ctx, rdb, rdb)
+		return
+	}
+	opt, err := redis.ParseClusterURL(url)
+	if err != nil {
+		return
+	}
+	opt.DialTimeout, opt.ReadTimeout, opt.MaxRetries, opt.DialerRetries = time.Second, time.Second, -1, 1
+	opt.DisableIdentity = true
+	c := redis.NewClusterClient(opt)
+	defer c.Close()
+	_ = c.ForEachMaster(ctx, func(ctx context.Context, n *redis.Client) error { return scanDelete(ctx, n, c) })
 }
 
 // lockedBuffer collects the server's output.
