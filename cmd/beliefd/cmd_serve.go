@@ -54,9 +54,12 @@ func openStore(ctx context.Context, cfg *serverConfig, log *slog.Logger) (jobs.S
 	if cfg.Redis == "" {
 		return memstore.New(memstore.Options{}), "embedded in-memory store", nil
 	}
-	st, err := redisstore.New(ctx, cfg.Redis, redisstore.Options{Logger: log})
+	st, err := redisstore.New(ctx, cfg.Redis, redisstore.Options{Logger: log, Cluster: cfg.RedisCluster})
 	if err != nil {
 		return nil, "", fmt.Errorf("open redis %s: %w", redactURL(cfg.Redis), err)
+	}
+	if cfg.RedisCluster {
+		return st, "redis cluster " + redactURL(cfg.Redis), nil
 	}
 	return st, "redis " + redactURL(cfg.Redis), nil
 }

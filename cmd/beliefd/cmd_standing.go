@@ -38,7 +38,7 @@ func openStanding(ctx context.Context, cfg *serverConfig, svc *jobs.Service, reg
 	var store standing.Store = standing.NewMemoryStore()
 	closeStore := func() {}
 	if cfg.Redis != "" {
-		rs, err := redisstore.NewStanding(ctx, cfg.Redis, redisstore.Options{Logger: log})
+		rs, err := redisstore.NewStanding(ctx, cfg.Redis, redisstore.Options{Logger: log, Cluster: cfg.RedisCluster})
 		if err != nil {
 			return nil, fmt.Errorf("open redis %s for standing queries: %w", redactURL(cfg.Redis), err)
 		}

@@ -21,6 +21,7 @@ type serverConfig struct {
 	GRPCAddr        string        // --grpc-addr, BELIEFD_GRPC_ADDR
 	MetricsAddr     string        // --metrics-addr, BELIEFD_METRICS_ADDR (worker only)
 	Redis           string        // --redis, BELIEFD_REDIS; empty: embedded memory backend
+	RedisCluster    bool          // --redis-cluster, BELIEFD_REDIS_CLUSTER: --redis names the seed nodes of a Redis Cluster
 	Workers         int           // --workers, BELIEFD_WORKERS
 	Preload         bool          // --preload, BELIEFD_PRELOAD
 	MaxUnfinished   int           // --max-jobs, BELIEFD_MAX_JOBS
@@ -62,6 +63,7 @@ func bindServerFlags(fs *flag.FlagSet, cfg *serverConfig, api bool) {
 		fs.DurationVar(&cfg.ShutdownTimeout, "shutdown-timeout", 20*time.Second, "how long SIGTERM waits for blocks in flight")
 	}
 	fs.StringVar(&cfg.Redis, "redis", "", "Redis URL redis://HOST:PORT/DB; empty runs on the embedded in-memory store")
+	fs.BoolVar(&cfg.RedisCluster, "redis-cluster", false, "--redis names seed nodes of a Redis Cluster: redis://HOST:PORT?addr=HOST2:PORT2&addr=HOST3:PORT3")
 	fs.IntVar(&cfg.Workers, "workers", runtime.GOMAXPROCS(0), "sampling goroutines in this process (0: API only)")
 	fs.IntVar(&cfg.MaxUnfinished, "max-jobs", 1000, "queued and running jobs allowed before submissions are refused (429)")
 	fs.DurationVar(&cfg.Retention, "retention", 24*time.Hour, "how long finished jobs are kept")
@@ -143,6 +145,9 @@ func (c *serverConfig) Validate(api bool) error {
 	}
 	if c.TenantsReload < time.Second {
 		return bad("--tenants-reload %s: want at least 1s", c.TenantsReload)
+	}
+	if c.RedisCluster && c.Redis == "" {
+		return bad("--redis-cluster needs --redis (the seed nodes of the cluster)")
 	}
 	if c.Redis != "" {
 		u, err := url.Parse(c.Redis)

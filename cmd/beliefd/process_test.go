@@ -139,12 +139,31 @@ func TestProcessesShareRedis(t *testing.T) {
 		t.Skip("starts processes")
 	}
 	rs := redistest.StartServer(t, redistest.Options{})
-	api := startProc(t, "serve", "--redis", rs.URL(), "--workers", "0", "--http-addr", "127.0.0.1:0", "--grpc-addr", "127.0.0.1:0")
+	processesShareRedis(t, "--redis", rs.URL())
+}
+
+// TestProcessesShareRedisCluster is TestProcessesShareRedis on a Redis
+// Cluster of three primaries (--redis-cluster).
+func TestProcessesShareRedisCluster(t *testing.T) {
+	if testing.Short() {
+		t.Skip("starts processes")
+	}
+	processesShareRedis(t, "--redis", redistest.ClusterURL(t), "--redis-cluster")
+}
+
+// processesShareRedis runs an API process and two worker processes on the
+// Redis that redisArgs name, and checks that a job is shared by both
+// workers, draws exactly its samples and equals a single-process run.
+func processesShareRedis(t *testing.T, redisArgs ...string) {
+	args := func(a ...string) []string {
+		return append(append([]string{}, a[:1]...), append(append([]string{}, redisArgs...), a[1:]...)...)
+	}
+	api := startProc(t, args("serve", "--workers", "0", "--http-addr", "127.0.0.1:0", "--grpc-addr", "127.0.0.1:0")...)
 	m := api.waitFor(t, regexp.MustCompile(`serving on (http://[0-9.:]+) `), 30*time.Second)
 	base := m[1]
 	metricsA, metricsB := freeAddr(t), freeAddr(t)
-	startProc(t, "worker", "--redis", rs.URL(), "--workers", "1", "--metrics-addr", metricsA)
-	startProc(t, "worker", "--redis", rs.URL(), "--workers", "1", "--metrics-addr", metricsB)
+	startProc(t, args("worker", "--workers", "1", "--metrics-addr", metricsA)...)
+	startProc(t, args("worker", "--workers", "1", "--metrics-addr", metricsB)...)
 
 	seed := uint64(20261202)
 	q := &infer.Query{

@@ -16,6 +16,7 @@ import (
 	"github.com/beliefd/beliefd/api/auth"
 	beliefv1 "github.com/beliefd/beliefd/proto/belief/v1"
 	"github.com/beliefd/beliefd/service/jobs"
+	"github.com/beliefd/beliefd/worker/redisstore"
 )
 
 // tenantsSource reads the tenants document from where the settings say.
@@ -46,11 +47,10 @@ func openTenants(ctx context.Context, cfg *serverConfig) (*auth.Registry, *tenan
 			close: func() error { return nil },
 		}
 	case cfg.TenantsRedisKey != "":
-		opts, err := redis.ParseURL(cfg.Redis)
+		rdb, _, err := redisstore.Dial(cfg.Redis, redisstore.Options{Cluster: cfg.RedisCluster})
 		if err != nil {
 			return nil, nil, fmt.Errorf("%w: --redis %q: %v", errUsage, redactURL(cfg.Redis), err)
 		}
-		rdb := redis.NewClient(opts)
 		key := cfg.TenantsRedisKey
 		src = &tenantsSource{
 			where: fmt.Sprintf("--tenants-redis-key %s", key),

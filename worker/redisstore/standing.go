@@ -12,7 +12,6 @@ import (
 	"time"
 
 	"github.com/redis/go-redis/v9"
-	"github.com/redis/go-redis/v9/maintnotifications"
 
 	"github.com/beliefd/beliefd/service/jobs"
 	"github.com/beliefd/beliefd/service/standing"
@@ -29,7 +28,7 @@ import (
 // and List skips (and after a minute removes) index entries whose record
 // is gone. It is safe for concurrent use.
 type StandingStore struct {
-	rdb *redis.Client
+	rdb redis.UniversalClient
 	p   string
 	log *slog.Logger
 }
@@ -45,10 +44,6 @@ const orphanAge = time.Minute
 // checks that it answers. opt.KeyPrefix, the timeouts and the logger
 // apply; an unreachable server gives an error wrapping jobs.ErrUnavailable.
 func NewStanding(ctx context.Context, url string, opt Options) (*StandingStore, error) {
-	ro, err := redis.ParseURL(url)
-	if err != nil {
-		return nil, fmt.Errorf("redisstore: url: %w", err)
-	}
 	if opt.KeyPrefix == "" {
 		opt.KeyPrefix = DefaultKeyPrefix
 	}
@@ -58,32 +53,14 @@ func NewStanding(ctx context.Context, url string, opt Options) (*StandingStore, 
 	if opt.Logger == nil {
 		opt.Logger = slog.Default()
 	}
-	for _, d := range []struct {
-		dst *time.Duration
-		opt time.Duration
-		def time.Duration
-	}{{&ro.DialTimeout, opt.DialTimeout, DefaultDialTimeout}, {&ro.ReadTimeout, opt.ReadTimeout, DefaultReadTimeout}, {&ro.WriteTimeout, opt.WriteTimeout, DefaultWriteTimeout}} {
-		if *d.dst == 0 {
-			*d.dst = d.def
-			if d.opt > 0 {
-				*d.dst = d.opt
-			}
-		}
+	rdb, addr, err := Dial(url, opt)
+	if err != nil {
+		return nil, err
 	}
-	if ro.MaxRetries == 0 {
-		ro.MaxRetries = 1
-	}
-	if ro.MaxRetryBackoff == 0 {
-		ro.MaxRetryBackoff = 100 * time.Millisecond
-	}
-	ro.DialerRetries = 1
-	ro.ContextTimeoutEnabled = true
-	ro.DisableIdentity = true
-	ro.MaintNotificationsConfig = &maintnotifications.Config{Mode: maintnotifications.ModeDisabled}
-	s := &StandingStore{rdb: redis.NewClient(ro), p: opt.KeyPrefix, log: opt.Logger.With("component", "redisstore-standing")}
+	s := &StandingStore{rdb: rdb, p: opt.KeyPrefix, log: opt.Logger.With("component", "redisstore-standing")}
 	if err := s.Ping(ctx); err != nil {
 		_ = s.rdb.Close()
-		return nil, fmt.Errorf("redisstore: connect %s: %w", ro.Addr, err)
+		return nil, fmt.Errorf("redisstore: connect %s: %w", addr, err)
 	}
 	return s, nil
 }

@@ -20,10 +20,14 @@ import (
 )
 
 func newStanding(t *testing.T, url, prefix string) *redisstore.StandingStore {
+	return newStandingOn(t, url, prefix, false)
+}
+
+func newStandingOn(t *testing.T, url, prefix string, cluster bool) *redisstore.StandingStore {
 	t.Helper()
 	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
 	defer cancel()
-	s, err := redisstore.NewStanding(ctx, url, redisstore.Options{KeyPrefix: prefix, Logger: slog.New(slog.DiscardHandler)})
+	s, err := redisstore.NewStanding(ctx, url, redisstore.Options{KeyPrefix: prefix, Cluster: cluster, Logger: slog.New(slog.DiscardHandler)})
 	if err != nil {
 		t.Fatalf("NewStanding(%s): %v", url, err)
 	}
@@ -37,6 +41,15 @@ func TestStandingConformance(t *testing.T) {
 	url := redistest.Start(t)
 	standingtest.Run(t, func(t *testing.T) standing.Store {
 		return newStanding(t, url, redistest.KeyPrefix(t, url))
+	})
+}
+
+// TestStandingConformanceCluster runs the same suite on a Redis Cluster of
+// three primaries, where a script touching two slots fails with CROSSSLOT.
+func TestStandingConformanceCluster(t *testing.T) {
+	url := redistest.ClusterURL(t)
+	standingtest.Run(t, func(t *testing.T) standing.Store {
+		return newStandingOn(t, url, redistest.KeyPrefix(t, url), true)
 	})
 }
 

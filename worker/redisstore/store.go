@@ -115,66 +115,66 @@ func New(ctx context.Context, url string, opt Options) (*Store, error) {
 	if err != nil {
 		return nil, err
 	}
-	var rdb redis.UniversalClient
-	addr := ""
-	if opt.Cluster {
-		co, err := redis.ParseClusterURL(url)
-		if err != nil {
-			return nil, fmt.Errorf("redisstore: cluster url: %w", err)
-		}
-		if co.DialTimeout == 0 {
-			co.DialTimeout = orDefault(opt.DialTimeout, DefaultDialTimeout)
-		}
-		if co.ReadTimeout == 0 {
-			co.ReadTimeout = orDefault(opt.ReadTimeout, DefaultReadTimeout)
-		}
-		if co.WriteTimeout == 0 {
-			co.WriteTimeout = orDefault(opt.WriteTimeout, DefaultWriteTimeout)
-		}
-		if co.MaxRetries == 0 {
-			co.MaxRetries = 1
-		}
-		if co.MaxRetryBackoff == 0 {
-			co.MaxRetryBackoff = 100 * time.Millisecond
-		}
-		co.DialerRetries = 1
-		co.ContextTimeoutEnabled = true
-		co.DisableIdentity = true
-		co.MaintNotificationsConfig = &maintnotifications.Config{Mode: maintnotifications.ModeDisabled}
-		rdb, addr = redis.NewClusterClient(co), strings.Join(co.Addrs, ",")
-	} else {
-		ro, err := redis.ParseURL(url)
-		if err != nil {
-			return nil, fmt.Errorf("redisstore: url: %w", err)
-		}
-		if ro.DialTimeout == 0 {
-			ro.DialTimeout = orDefault(opt.DialTimeout, DefaultDialTimeout)
-		}
-		if ro.ReadTimeout == 0 {
-			ro.ReadTimeout = orDefault(opt.ReadTimeout, DefaultReadTimeout)
-		}
-		if ro.WriteTimeout == 0 {
-			ro.WriteTimeout = orDefault(opt.WriteTimeout, DefaultWriteTimeout)
-		}
-		if ro.MaxRetries == 0 {
-			// One retry absorbs a pooled connection broken by a server restart;
-			// more would only delay ErrUnavailable when the server is down.
-			ro.MaxRetries = 1
-		}
-		if ro.MaxRetryBackoff == 0 {
-			ro.MaxRetryBackoff = 100 * time.Millisecond
-		}
-		ro.DialerRetries = 1
-		ro.ContextTimeoutEnabled = true
-		ro.DisableIdentity = true
-		ro.MaintNotificationsConfig = &maintnotifications.Config{Mode: maintnotifications.ModeDisabled}
-		rdb, addr = redis.NewClient(ro), ro.Addr
+	rdb, addr, err := Dial(url, opt)
+	if err != nil {
+		return nil, err
 	}
 	s, err := NewWithClient(ctx, rdb, opt)
 	if err != nil {
 		return nil, fmt.Errorf("redisstore: connect %s: %w", addr, err)
 	}
 	return s, nil
+}
+
+// Dial makes the client New uses, without connecting: to the server at
+// url, or with opt.Cluster to the cluster whose seed nodes url names. Unless
+// the URL sets them, the timeouts are opt's (default 1s each) and a call is
+// retried once, so that calls fail fast when Redis is down. addr names the
+// server or nodes for messages.
+func Dial(url string, opt Options) (rdb redis.UniversalClient, addr string, err error) {
+	dial, read, write := orDefault(opt.DialTimeout, DefaultDialTimeout), orDefault(opt.ReadTimeout, DefaultReadTimeout), orDefault(opt.WriteTimeout, DefaultWriteTimeout)
+	if opt.Cluster {
+		co, err := redis.ParseClusterURL(url)
+		if err != nil {
+			return nil, "", fmt.Errorf("redisstore: cluster url: %w", err)
+		}
+		fastFail(&co.DialTimeout, &co.ReadTimeout, &co.WriteTimeout, &co.MaxRetries, &co.MaxRetryBackoff, dial, read, write)
+		co.DialerRetries = 1
+		co.ContextTimeoutEnabled = true
+		co.DisableIdentity = true
+		co.MaintNotificationsConfig = &maintnotifications.Config{Mode: maintnotifications.ModeDisabled}
+		return redis.NewClusterClient(co), strings.Join(co.Addrs, ","), nil
+	}
+	ro, err := redis.ParseURL(url)
+	if err != nil {
+		return nil, "", fmt.Errorf("redisstore: url: %w", err)
+	}
+	fastFail(&ro.DialTimeout, &ro.ReadTimeout, &ro.WriteTimeout, &ro.MaxRetries, &ro.MaxRetryBackoff, dial, read, write)
+	ro.DialerRetries = 1
+	ro.ContextTimeoutEnabled = true
+	ro.DisableIdentity = true
+	ro.MaintNotificationsConfig = &maintnotifications.Config{Mode: maintnotifications.ModeDisabled}
+	return redis.NewClient(ro), ro.Addr, nil
+}
+
+// fastFail fills the timeouts and retries a URL left unset. One retry
+// absorbs a pooled connection broken by a server restart; more would only
+// delay ErrUnavailable when the server is down.
+func fastFail(dialT, readT, writeT *time.Duration, retries *int, backoff *time.Duration, dial, read, write time.Duration) {
+	for _, d := range []struct {
+		dst *time.Duration
+		def time.Duration
+	}{{dialT, dial}, {readT, read}, {writeT, write}} {
+		if *d.dst == 0 {
+			*d.dst = d.def
+		}
+	}
+	if *retries == 0 {
+		*retries = 1
+	}
+	if *backoff == 0 {
+		*backoff = 100 * time.Millisecond
+	}
 }
 
 // NewWithClient returns a Store over rdb, a *redis.Client (one server) or
