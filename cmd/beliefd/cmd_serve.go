@@ -266,7 +266,11 @@ func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	}
 	if len(preloaded) > 0 {
 		fmt.Fprintf(stdout, "  example models: %s\n", strings.Join(preloaded, ", "))
-		fmt.Fprintf(stdout, "  try:  curl -s %s/v1/query -d '{\"model\": \"%s\", \"evidence\": {\"alarm_checkout_5xx\": \"firing\"}, \"targets\": [\"bad_deploy\"]}'\n", httpURL, preloaded[0])
+		auth := ""
+		if p.tenants != nil {
+			auth = `-H "Authorization: Bearer $BELIEFD_TOKEN" `
+		}
+		fmt.Fprintf(stdout, "  try:  curl -s %s%s/v1/query -d '{\"model\": \"%s\", \"evidence\": {\"alarm_checkout_5xx\": \"firing\"}, \"targets\": [\"bad_deploy\"]}'\n", auth, httpURL, preloaded[0])
 	}
 	if p.tenants != nil {
 		fmt.Fprintf(stdout, "  tokens required (%s: %d tenants); send \"Authorization: Bearer TOKEN\"\n", p.tenantsSrc.where, len(p.tenants.Tenants()))
