@@ -117,11 +117,17 @@ func (s *Store) CreateJob(ctx context.Context, j *jobs.Job, lim jobs.CreateLimit
 			}
 			// The key names a job without a record: one being created
 			// (wait for it), or one gone (forget it, then try again).
-			st, err := forgetJobScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), res[1], "", s.k.idem(j.Tenant, j.IdempotencyKey)).Text()
+			// Past the wait, a complete job without a record (lost to the
+			// server) is forgotten too.
+			force := ""
+			if time.Now().After(waitUntil) {
+				force = "force"
+			}
+			st, err := forgetJobScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), res[1], "", s.k.idem(j.Tenant, j.IdempotencyKey), force).Text()
 			if err != nil {
 				return nil, false, s.fail(ctx, "create job", err)
 			}
-			if st == "creating" {
+			if st == "creating" || st == "exists" {
 				if time.Now().After(waitUntil) {
 					return nil, false, fmt.Errorf("redisstore: create job: idempotency key %q: %w: its job %s is still being created", j.IdempotencyKey, jobs.ErrConflict, res[1])
 				}

@@ -159,15 +159,22 @@ return 1
 // creation of that token and nothing else; without one, it leaves a
 // creation in progress alone. An idempotency key named in ARGV[4] is
 // deleted too if it names the job (the caller's key, in case the indexes
-// no longer know it). ARGV: G, id, token or "", idempotency key or "".
-// Returns 'forgotten', 'creating' (left alone) or 'other' (another
-// creation's reservation).
+// no longer know it). Without a token and without 'force' (ARGV[5]) it
+// also leaves alone a job whose creation is complete and whose retention
+// has not passed: its record exists, and a caller that found none read it
+// just before the creation's write landed. ARGV: G, id, token or "",
+// idempotency key or "", "force" or "". Returns 'forgotten', 'creating'
+// (left alone), 'exists' (left alone) or 'other' (another creation's
+// reservation).
 var forgetJobScript = redis.NewScript(luaGlobal + `
 local c = redis.call('HGET', CREATING, ARGV[2])
 if ARGV[3] ~= '' then
   if not c or string.sub(c, 1, #ARGV[3] + 1) ~= ARGV[3] .. '\n' then return 'other' end
 elseif c then
   return 'creating'
+elseif ARGV[5] ~= 'force' and redis.call('HEXISTS', META, ARGV[2]) == 1 then
+  local exp = redis.call('ZSCORE', EXPIRING, ARGV[2])
+  if not exp or tonumber(exp) > now_ms() then return 'exists' end
 end
 forget(ARGV[2])
 if ARGV[4] ~= '' and redis.call('GET', ARGV[4]) == ARGV[2] then redis.call('DEL', ARGV[4]) end

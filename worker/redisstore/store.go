@@ -75,6 +75,11 @@ type Store struct {
 	// window plus twice the skew margin, for the clocks of two nodes.
 	window, grace time.Duration
 
+	// missPrev and missCur hold the complete jobs the previous and the
+	// current sweep found without a record (Sweep holds missMu).
+	missMu            sync.Mutex
+	missPrev, missCur map[string]bool
+
 	quit      chan struct{} // closed by Close: the sweeper stops
 	sweepDone chan struct{} // closed when the sweeper has stopped
 	closeOnce sync.Once

@@ -58,6 +58,9 @@ func (r SweepReport) Repairs() int {
 // sweeps may run at any time, in any number of processes. The Store
 // sweeps by itself every Options.SweepEvery.
 func (s *Store) Sweep(ctx context.Context) (SweepReport, error) {
+	s.missMu.Lock()
+	defer s.missMu.Unlock()
+	s.missPrev, s.missCur = s.missCur, map[string]bool{}
 	var rep SweepReport
 	creating, err := s.sweepCreations(ctx, &rep)
 	if err != nil {
@@ -194,12 +197,22 @@ func (s *Store) sweepBatch(ctx context.Context, ids []string, rep *SweepReport) 
 	for i, id := range ids {
 		a, ok := syncArgsOf(id, recs[i].Val())
 		if !ok {
-			res, err := forgetJobScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), id, "", "").Text()
+			// A complete job without a record is either being read just
+			// before its creation's write landed, or lost by the server:
+			// it is forgotten when the previous sweep missed it too.
+			force := ""
+			if s.missedBefore(id) {
+				force = "force"
+			}
+			res, err := forgetJobScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), id, "", "", force).Text()
 			if err != nil {
 				return s.fail(ctx, "sweep", err)
 			}
-			if res == "forgotten" {
+			switch res {
+			case "forgotten":
 				rep.Forgotten++
+			case "exists":
+				s.missed(id)
 			}
 			continue
 		}
@@ -387,3 +400,8 @@ func (s *Store) sweepTurn(every time.Duration) {
 			"resynced", rep.Resynced, "forgotten", rep.Forgotten, "models_listed", rep.ModelsListed, "models_unlisted", rep.ModelsUnlisted)
 	}
 }
+
+// missed notes a job found without a record in this sweep; missedBefore
+// reports whether the previous sweep found it so too. Sweep holds missMu.
+func (s *Store) missed(id string)            { s.missCur[id] = true }
+func (s *Store) missedBefore(id string) bool { return s.missPrev[id] }

@@ -173,9 +173,15 @@ func TestSweepRepairsInterruptedUpdate(t *testing.T) {
 	if got := unfinishedOf(t, s, "acme"); got != "3 queued, 0 running" {
 		t.Fatalf("before the sweep: %s", got)
 	}
+	// A reader that finds no record may have read just before a
+	// creation's write landed: the first sweep leaves C alone, the next
+	// one, finding it missing again, forgets it.
 	rep := mustSweep(t, s)
-	if rep.Resynced != 2 || rep.Forgotten != 1 {
-		t.Fatalf("sweep: %+v; want 2 resynced, 1 forgotten", rep)
+	if rep.Resynced != 2 || rep.Forgotten != 0 {
+		t.Fatalf("first sweep: %+v; want 2 resynced, none forgotten", rep)
+	}
+	if rep := mustSweep(t, s); rep.Forgotten != 1 || rep.Resynced != 0 {
+		t.Fatalf("second sweep: %+v; want 1 forgotten", rep)
 	}
 	if got := unfinishedOf(t, s, "acme"); got != "0 queued, 1 running" {
 		t.Fatalf("after the sweep: %s; want B running only", got)
@@ -188,6 +194,35 @@ func TestSweepRepairsInterruptedUpdate(t *testing.T) {
 	}
 	if rep := mustSweep(t, s); rep.Repairs() != 0 {
 		t.Fatalf("a second sweep repaired %+v; want nothing", rep)
+	}
+}
+
+// A caller that read no record just before a creation's write landed must
+// not forget the job the creation has completed meanwhile: forgetJob
+// without a token leaves a complete job alone unless forced.
+func TestForgetLeavesCompleteJobAlone(t *testing.T) {
+	url := redistest.Start(t)
+	s := sweepStore(t, url, Options{})
+	ctx := ctxFor(t)
+	j := testJob("A")
+	j.IdempotencyKey = "k"
+	create(t, s, j)
+	res, err := forgetJobScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), "A", "", s.k.idem(j.Tenant, "k"), "").Text()
+	if err != nil || res != "exists" {
+		t.Fatalf("forget of a complete job = %q, %v; want exists", res, err)
+	}
+	if _, created, err := s.CreateJob(ctx, testJob("B"), jobs.CreateLimits{}); err != nil || !created {
+		t.Fatalf("CreateJob(B): %v", err)
+	}
+	k := testJob("C")
+	k.IdempotencyKey = "k"
+	got, created, err := s.CreateJob(ctx, k, jobs.CreateLimits{})
+	if err != nil || created || got.ID != "A" {
+		t.Fatalf("CreateJob with A's key = %v created %v, %v; want A, not created", got, created, err)
+	}
+	res, err = forgetJobScript.Run(ctx, s.rdb, []string{s.k.meta()}, s.k.global(), "A", "", "", "force").Text()
+	if err != nil || res != "forgotten" {
+		t.Fatalf("forced forget = %q, %v; want forgotten", res, err)
 	}
 }
 
