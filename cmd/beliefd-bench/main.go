@@ -3,7 +3,7 @@
 // networks whose exact answers are known, prints the tables and writes an
 // SVG plot of relative error against samples.
 //
-//	go run ./cmd/beliefd-bench [-quick] [-svg FILE] [-seeds N] [-workers N] [-v]
+//	go run ./cmd/beliefd-bench [-quick] [-svg FILE] [-seeds N] [-workers N] [-parts top,evidence,mse] [-v]
 package main
 
 import (
@@ -13,6 +13,7 @@ import (
 	"io"
 	"os"
 	"os/signal"
+	"strings"
 
 	"github.com/beliefd/beliefd/service/sampling/adaptive/adaptivebench"
 )
@@ -29,6 +30,7 @@ func run(args []string, stdout, stderr io.Writer) int {
 	seeds := fs.Int("seeds", 0, "repeated runs per case (default 6, or 3 with -quick)")
 	workers := fs.Int("workers", 0, "sampling goroutines per run (default one per core)")
 	verbose := fs.Bool("v", false, "print progress on stderr")
+	parts := fs.String("parts", "", "comma-separated tables to measure: top, evidence, mse (default all)")
 	if err := fs.Parse(args); err != nil {
 		return 2
 	}
@@ -41,6 +43,9 @@ func run(args []string, stdout, stderr io.Writer) int {
 		return 2
 	}
 	cfg := adaptivebench.Config{Quick: *quick, Seeds: *seeds, Workers: *workers}
+	if *parts != "" {
+		cfg.Parts = strings.Split(*parts, ",")
+	}
 	if *verbose {
 		cfg.Log = stderr
 	}

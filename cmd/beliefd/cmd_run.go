@@ -7,6 +7,7 @@ import (
 	"fmt"
 	"io"
 	"os"
+	"strconv"
 	"strings"
 	"time"
 
@@ -25,6 +26,10 @@ type queryFlags struct {
 	confidence              *float64
 	seed                    *uint64
 	mpe                     *bool
+	// Adaptive importance sampling (the query's "adaptive" object).
+	rare          multiFlag
+	rareThreshold *float64
+	epsDelta      *string
 }
 
 func bindQueryFlags(fs *flag.FlagSet) *queryFlags {
@@ -41,7 +46,30 @@ func bindQueryFlags(fs *flag.FlagSet) *queryFlags {
 	fs.Var(&qf.evidence, "evidence", "hard evidence var=state (repeat the flag, or separate with commas)")
 	fs.Var(&qf.soft, "soft", "soft evidence var=l1,l2,... one likelihood per state (repeat for more variables)")
 	fs.Var(&qf.targets, "target", "variables whose posteriors to report (comma-separated; default all unobserved)")
+	fs.Var(&qf.rare, "rare", "adaptive-importance: give each unlikely state of these targets (`VAR,...`, each also a --target) its own\nimportance function, so that even a probability of 1e-9 gets a relative interval")
+	qf.rareThreshold = fs.Float64("rare-threshold", 0, "adaptive-importance: target states whose pilot estimate is below `P` get their own importance function\ntoo (default 0.001; negative: only the --rare ones)")
+	qf.epsDelta = fs.String("eps-delta", "", "adaptive-importance: also stop once P(evidence) and each rare state's joint probability lie within a\nfactor 1±EPS of the truth with probability at least 1-DELTA (the stopping rule of Dagum, Karp,\nLuby & Ross 2000); `EPS,DELTA` such as 0.1,0.05")
 	return qf
+}
+
+// adaptive builds the query's adaptive options from the flags; nil when
+// none is given.
+func (qf *queryFlags) adaptive() (*infer.AdaptiveOptions, error) {
+	rare := splitList(qf.rare)
+	if len(rare) == 0 && *qf.rareThreshold == 0 && *qf.epsDelta == "" {
+		return nil, nil
+	}
+	a := &infer.AdaptiveOptions{RareTargets: rare, RareThreshold: *qf.rareThreshold}
+	if s := *qf.epsDelta; s != "" {
+		es, ds, ok := strings.Cut(s, ",")
+		eps, err1 := strconv.ParseFloat(strings.TrimSpace(es), 64)
+		delta, err2 := strconv.ParseFloat(strings.TrimSpace(ds), 64)
+		if !ok || err1 != nil || err2 != nil {
+			return nil, fmt.Errorf("%w: --eps-delta %q: want two numbers EPS,DELTA such as 0.1,0.05", errUsage, s)
+		}
+		a.EpsDelta = &infer.EpsDeltaRule{Epsilon: eps, Delta: delta}
+	}
+	return a, nil
 }
 
 // query builds and validates the query document the flags describe.
@@ -61,6 +89,9 @@ func (qf *queryFlags) query(fs *flag.FlagSet, modelRef string) (*infer.Query, er
 	}
 	if *qf.timeout != 0 {
 		q.Stop.Timeout = qf.timeout.String()
+	}
+	if q.Adaptive, err = qf.adaptive(); err != nil {
+		return nil, err
 	}
 	fs.Visit(func(f *flag.Flag) {
 		if f.Name == "seed" {

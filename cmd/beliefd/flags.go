@@ -18,6 +18,7 @@ func newFlagSet(name, synopsis string, out io.Writer) *flag.FlagSet {
 	fs.SetOutput(out)
 	fs.Usage = func() {
 		fmt.Fprintf(out, "usage: beliefd %s\n\nflags:\n", synopsis)
+		fs.SetOutput(out)
 		fs.PrintDefaults()
 	}
 	return fs
@@ -26,7 +27,10 @@ func newFlagSet(name, synopsis string, out io.Writer) *flag.FlagSet {
 // parseFlags parses args; help and flag errors come back as errHelp and errUsage.
 func parseFlags(fs *flag.FlagSet, args []string) error {
 	fs.SetOutput(io.Discard)
+	usage := fs.Usage
+	fs.Usage = func() {} // shown once below, not on every parse error
 	err := fs.Parse(args)
+	fs.Usage = usage
 	switch {
 	case errors.Is(err, flag.ErrHelp):
 		fs.Usage()

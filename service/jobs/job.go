@@ -6,6 +6,7 @@ import (
 
 	"github.com/beliefd/beliefd/service/infer"
 	"github.com/beliefd/beliefd/service/sampling"
+	"github.com/beliefd/beliefd/service/sampling/adaptive"
 )
 
 // State is a job's state.
@@ -77,9 +78,11 @@ type Job struct {
 	// sampling run as one unit: Blocks == 1, BlockSize == 0.
 	BlockSize int   `json:"block_size,omitempty"`
 	Blocks    int64 `json:"blocks"`
-	// Merged holds the statistics of blocks 0..MergedBlocks-1.
-	Merged       *sampling.Stats `json:"merged,omitempty"`
-	MergedBlocks int64           `json:"merged_blocks"`
+	// Merged holds the statistics of blocks 0..MergedBlocks-1
+	// (MergedAdaptive for adaptive importance sampling).
+	Merged         *sampling.Stats `json:"merged,omitempty"`
+	MergedAdaptive *adaptive.Stats `json:"merged_adaptive,omitempty"`
+	MergedBlocks   int64           `json:"merged_blocks"`
 	// Result is the latest result document: partial while running.
 	Result *infer.Result `json:"result,omitempty"`
 	// ResultAt is when Result was last written (partial results are
@@ -99,7 +102,8 @@ type Job struct {
 }
 
 // Blockwise reports whether the job's work is cut into blocks that many
-// workers share (forward, rejection and likelihood weighting).
+// workers share (forward, rejection, likelihood weighting and adaptive
+// importance sampling).
 func (j *Job) Blockwise() bool { return j.BlockSize > 0 }
 
 // Clone returns a copy whose statistics may be changed without touching
@@ -108,6 +112,9 @@ func (j *Job) Clone() *Job {
 	c := *j
 	if j.Merged != nil {
 		c.Merged = j.Merged.Clone()
+	}
+	if j.MergedAdaptive != nil {
+		c.MergedAdaptive = j.MergedAdaptive.Clone()
 	}
 	return &c
 }

@@ -42,11 +42,11 @@ var (
 // ErrNoWorkerID is returned by RunOnce when the worker has no ID.
 var ErrNoWorkerID = errors.New("worker id is empty")
 
-// RunOnce claims one unit of work among the claimable jobs (highest
-// priority first), runs it under a lease that it renews every LeaseTime/3,
+// RunOnce claims one unit of work among the claimable jobs (tenants by
+// fair share, see fair.go; a tenant's jobs highest priority first), runs it under a lease that it renews every LeaseTime/3,
 // commits it and advances the job: a block of samples for forward,
-// rejection and likelihood-weighting jobs, the whole run for exact and
-// Gibbs jobs. A unit stops early when the job is cancelled or past its
+// rejection, likelihood-weighting and adaptive importance sampling jobs,
+// the whole run for exact and Gibbs jobs. A unit stops early when the job is cancelled or past its
 // deadline (checked every 250ms) or when the lease is lost, and then
 // commits nothing. When ctx ends the unit stops and is handed back
 // (ReleaseBlock) for another worker. A panic in a unit fails its job.
@@ -56,20 +56,42 @@ func (s *Service) RunOnce(ctx context.Context, workerID string) (bool, error) {
 	if workerID == "" {
 		return false, fmt.Errorf("run once: %w", ErrNoWorkerID)
 	}
-	ids, err := s.store.ClaimableJobs(ctx, claimScan)
+	cands, err := s.store.ClaimableJobs(ctx, claimScan)
 	if err != nil {
 		return false, fmt.Errorf("run once: %w", err)
 	}
-	for _, id := range ids {
+	// Tenants take turns by fair share (fair.go); a tenant's jobs go in
+	// the store's order, highest priority first.
+	groups := s.fair.round(cands)
+	tried := make([]bool, len(groups))
+	for {
+		g, tk := s.fair.pick(groups, tried)
+		if g < 0 {
+			return false, nil
+		}
+		tried[g] = true
+		began := s.now()
+		worked, err := s.tryTenant(ctx, groups[g].jobs, workerID)
+		s.fair.done(tk, worked, s.now().Sub(began))
+		if err != nil || worked {
+			return worked, err
+		}
+	}
+}
+
+// tryTenant tries the jobs of one tenant in order until one gives a unit
+// of work.
+func (s *Service) tryTenant(ctx context.Context, cands []Claimable, workerID string) (bool, error) {
+	for _, c := range cands {
 		if err := ctx.Err(); err != nil {
 			return false, err
 		}
-		worked, err := s.tryJob(ctx, id, workerID)
+		worked, err := s.tryJob(ctx, c.ID, workerID)
 		if errors.Is(err, ErrNotFound) {
 			continue
 		}
 		if err != nil {
-			return worked, fmt.Errorf("run once: job %s: %w", id, err)
+			return worked, fmt.Errorf("run once: job %s: %w", c.ID, err)
 		}
 		if worked {
 			return true, nil
@@ -275,12 +297,14 @@ func (s *Service) handBack(ctx context.Context, j *Job, block int64, worker stri
 
 // blockOut is what a block goroutine hands back.
 type blockOut struct {
-	st  *sampling.Stats
-	err error
+	st      any
+	samples int64
+	err     error
 }
 
 // runBlock draws block b of a block-wise job under its lease, commits it
-// and advances the job.
+// and advances the job. An adaptive job's first block in this process
+// learns the importance functions first (under the same lease).
 func (s *Service) runBlock(ctx context.Context, j *Job, b int64, worker string) error {
 	began := time.Now()
 	log := s.log.With("job", j.ID)
@@ -299,7 +323,6 @@ func (s *Service) runBlock(ctx context.Context, j *Job, b int64, worker string) 
 		s.handBack(ctx, j, b, worker)
 		return s.endBlockwise(ctx, j.ID, StateSucceeded, sampling.ReasonTimeout)
 	}
-	n := sampling.BlockLen(b, j.BlockSize, j.Stop.MaxSamples)
 	u := s.startUnit(ctx, j, b, worker)
 	out := make(chan blockOut, 1)
 	// The block runs on its own goroutine so that cancellation, a lost
@@ -316,9 +339,13 @@ func (s *Service) runBlock(ctx context.Context, j *Job, b int64, worker string) 
 		if s.hookUnit != nil {
 			s.hookUnit(j, b)
 		}
-		st := p.kernel.NewStats()
-		p.kernel.RunBlock(j.Seed, b, n, st)
-		out <- blockOut{st: st}
+		bs, err := p.sampler(u.ctx)
+		if err != nil {
+			out <- blockOut{err: wrapRunError(err)}
+			return
+		}
+		st, n := bs.runBlock(j, b)
+		out <- blockOut{st: st, samples: n}
 	}()
 	var res blockOut
 	select {
@@ -334,7 +361,7 @@ func (s *Service) runBlock(ctx context.Context, j *Job, b int64, worker string) 
 		s.obs.BlockDone(j.Method, OutcomeError, time.Since(began))
 		return s.fail(ctx, j.ID, res.err)
 	}
-	s.obs.SamplesDrawn(j.Method, int64(n))
+	s.obs.SamplesDrawn(j.Method, res.samples)
 	data, err := json.Marshal(res.st)
 	if err != nil {
 		return s.fail(ctx, j.ID, fmt.Errorf("encode block %d: %w", b, err))

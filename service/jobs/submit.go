@@ -25,16 +25,19 @@ type plan struct {
 	net     *model.Network
 	ev      *model.Evidence
 	targets []int
-	kernel  *sampling.Kernel // block-wise jobs only
+	kernel  *sampling.Kernel // forward, rejection and likelihood-weighting jobs
+	// adaptive holds an adaptive importance sampling job's options and,
+	// once learned in this process, its sampler.
+	adaptive *adaptivePlan
 }
 
 // Submit validates q against its model now (unknown variables or states,
 // a bad stopping rule, the method: "auto" becomes exact inference,
 // adaptive importance sampling or likelihood weighting, Gibbs
 // reducibility), draws a seed when q has none, plans the work (blocks of
-// sampling.DefaultBlockSize samples for forward, rejection and likelihood
-// weighting; one unit for exact inference, Gibbs sampling and adaptive
-// importance sampling) and queues the job. A query whose idempotency key names a
+// sampling.DefaultBlockSize samples for forward, rejection, likelihood
+// weighting and adaptive importance sampling; one unit for exact inference
+// and Gibbs sampling) and queues the job. A query whose idempotency key names a
 // job still kept returns that job with created == false. When the queue
 // holds Config.MaxUnfinished unfinished jobs it fails with ErrQueueFull.
 func (s *Service) Submit(ctx context.Context, q *infer.Query) (*Job, bool, error) {
@@ -42,16 +45,23 @@ func (s *Service) Submit(ctx context.Context, q *infer.Query) (*Job, bool, error
 	if err != nil {
 		return nil, false, fmt.Errorf("submit: %w", err)
 	}
-	stored, created, err := s.store.CreateJob(ctx, j, s.cfg.MaxUnfinished)
+	stored, created, err := s.store.CreateJob(ctx, j, CreateLimits{
+		MaxUnfinished: s.cfg.MaxUnfinished, TenantMaxUnfinished: s.policy(j.Tenant).MaxUnfinished,
+	})
 	if err != nil {
 		return nil, false, fmt.Errorf("submit: %w", err)
+	}
+	if !created && stored.Tenant != j.Tenant {
+		// Idempotency keys are each tenant's own: another tenant's job is
+		// never handed out for one.
+		return nil, false, fmt.Errorf("submit: %w: idempotency_key %q is taken; choose another (a random one, such as a UUID)", infer.ErrBadQuery, j.IdempotencyKey)
 	}
 	if !created {
 		return mirror(stored), false, nil
 	}
 	s.plans.put(stored.ID, p)
 	s.obs.JobSubmitted(stored.Method)
-	s.log.Info("job submitted", "job", stored.ID, "model", stored.Model.Name, "version", stored.Model.Version,
+	s.log.Info("job submitted", "job", stored.ID, "tenant", stored.Tenant, "model", stored.Model.Name, "version", stored.Model.Version,
 		"method", stored.Method, "blocks", stored.Blocks, "priority", stored.Priority.String())
 	if err := s.store.Notify(ctx, TopicQueue); err != nil {
 		s.log.Warn("notify queue", "job", stored.ID, "err", err)
@@ -66,6 +76,10 @@ func (s *Service) plan(ctx context.Context, q *infer.Query) (*Job, *plan, error)
 	}
 	qc := cloneQuery(q)
 	if err := qc.Validate(); err != nil {
+		return nil, nil, err
+	}
+	caller := principal(ctx)
+	if err := s.limitSamples(caller, &qc.Stop); err != nil {
 		return nil, nil, err
 	}
 	stop, err := qc.Stop.Sampling()
@@ -105,17 +119,25 @@ func (s *Service) plan(ctx context.Context, q *infer.Query) (*Job, *plan, error)
 	p := &plan{net: net, ev: ev, targets: targets}
 	now := s.now()
 	j := &Job{
-		ID: newJobID(), State: StateQueued, Priority: prio, Query: *qc, Model: info,
+		ID: newJobID(), Tenant: caller.Tenant, State: StateQueued, Priority: prio, Query: *qc, Model: info,
 		Method: method, MethodReason: reason, Seed: seed, Stop: stop, Blocks: 1,
 		IdempotencyKey: qc.IdempotencyKey, CreatedAt: now, UpdatedAt: now, Retention: s.cfg.Retention,
 	}
 	switch method {
 	case infer.MethodExact:
 	case infer.MethodAdaptive:
-		// One unit, like Gibbs sampling: its learning phase runs first.
-		if _, err := infer.AdaptiveOptionsFor(net, qc, ev, targets); err != nil {
+		// Blocks, like likelihood weighting. The learning phase runs in
+		// the first worker process that needs it (see adaptivePlan), not
+		// here; the blocks past the samples left after the initial block
+		// draw nothing and are never merged (the sample cap stops the
+		// run first).
+		ap, err := newAdaptivePlan(net, qc, ev, targets, seed, stop)
+		if err != nil {
 			return nil, nil, err
 		}
+		p.adaptive = ap
+		j.BlockSize = sampling.DefaultBlockSize
+		j.Blocks = sampling.NumBlocks(stop.MaxSamples, j.BlockSize)
 	case infer.MethodGibbs:
 		if err := checkGibbs(net, ev, targets, seed, stop); err != nil {
 			return nil, nil, err
@@ -199,7 +221,12 @@ func (s *Service) planOf(ctx context.Context, j *Job) (*plan, error) {
 	if p, ok := s.plans.get(j.ID); ok {
 		return p, nil
 	}
-	net, err := s.network(ctx, j.Model)
+	// The record names its model as the job's tenant does (scope.go).
+	info := j.Model
+	if stored, ok := (Principal{Tenant: j.Tenant, Admin: true}).storeName(info.Name); ok {
+		info.Name = stored
+	}
+	net, err := s.network(ctx, info)
 	if err != nil {
 		return nil, err
 	}
@@ -212,11 +239,28 @@ func (s *Service) planOf(ctx context.Context, j *Job) (*plan, error) {
 		return nil, err
 	}
 	p := &plan{net: net, ev: ev, targets: targets}
-	if j.Blockwise() {
+	switch {
+	case !j.Blockwise():
+	case j.Method == infer.MethodAdaptive:
+		if p.adaptive, err = newAdaptivePlan(net, &j.Query, ev, targets, j.Seed, j.Stop); err != nil {
+			return nil, err
+		}
+	default:
 		if p.kernel, err = sampling.NewKernel(net, ev, j.Method, targets); err != nil {
 			return nil, err
 		}
 	}
 	s.plans.put(j.ID, p)
 	return p, nil
+}
+
+// newAdaptivePlan resolves the adaptive options of a query, as
+// infer.Runner does, for the job's seed and stopping rule.
+func newAdaptivePlan(net *model.Network, q *infer.Query, ev *model.Evidence, targets []int, seed uint64, stop sampling.Stop) (*adaptivePlan, error) {
+	opt, err := infer.AdaptiveOptionsFor(net, q, ev, targets)
+	if err != nil {
+		return nil, err
+	}
+	opt.Seed, opt.Stop = seed, stop
+	return &adaptivePlan{net: net, ev: ev, targets: targets, opt: opt}, nil
 }

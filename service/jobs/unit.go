@@ -27,7 +27,8 @@ type unitResult struct {
 
 // runUnit runs a single-unit job (exact inference or Gibbs sampling) with
 // infer.Runner, so that its result is the one `beliefd run` gives, under
-// the lease of block 0.
+// the lease of block 0. Adaptive importance sampling jobs are block-wise;
+// a record stored as one unit by an earlier version still runs here.
 func (s *Service) runUnit(ctx context.Context, j *Job, worker string) error {
 	began := time.Now()
 	log := s.log.With("job", j.ID)

@@ -20,6 +20,9 @@ type BlockPlan[S any] struct {
 	Timeout time.Duration
 	// New returns empty statistics.
 	New func() S
+	// First, when set, returns the statistics the merge starts from
+	// (drawn before block 0); otherwise it starts from New().
+	First func() S
 	// Run draws block b into st (overwriting it). It returns false when it
 	// stopped early because abort was set; its statistics are then dropped.
 	Run func(b int64, st S, abort *atomic.Bool) bool
@@ -79,6 +82,9 @@ func RunBlocks[S any](ctx context.Context, p BlockPlan[S]) (S, string, error) {
 		}()
 	}
 	merged := p.New()
+	if p.First != nil {
+		merged = p.First()
+	}
 	pending := make(map[int64]S, ahead)
 	next, m := int64(0), int64(0)
 	dispatch := func() {

@@ -60,11 +60,12 @@ func (s *Sampler) markCrossings(merged *Stats, prev []float64, b int64, blk *Sta
 			continue
 		}
 		r := sampling.NewStream(s.opt.Seed, trackStream(i, b))
+		fillEvidence(t, x)
 		sum := prev[i] * inv
 		n := blk.Tracks[i].N
 		k := int64(0)
 		for k < n {
-			w := s.draw(t, &r, x, nil)
+			w := s.draw(t, &r, x)
 			k++
 			if w > 0 {
 				sum += w * inv

@@ -39,8 +39,22 @@ type track struct {
 	q        []float64 // the importance tables, laid out like the CPTs
 	q0       []float64 // the tables from propagation, kept as the defensive part
 	floor    []float64 // the ε-cutoff's floor of every table entry
-	qcum     []float64 // cumulative rows of q (see pick)
-	ratio    []float64 // P(x|row)/Q(x|row) where Q > 0
+	// tab is what a draw reads, one row next to the other so that a row
+	// sits in one or two cache lines: the row at table offset off (c
+	// states) is tab[2·off : 2·off+c], the cumulative row of q (see pick),
+	// followed by tab[2·off+c : 2·off+2c], the factor each state
+	// contributes to the weight: P(x|row)/Q(x|row) times the soft
+	// likelihood (0 where Q = 0), or P(e|row) for an observed variable.
+	tab []float64
+	// steps are the variables a draw visits, in topological order:
+	// relevant ones (see Sampler.relevant) except observed variables
+	// whose parents are all observed, whose factor P(e|parents) is the
+	// same in every sample and is folded into constM·2^constE. sampled
+	// lists the unobserved ones among them.
+	steps   []step
+	sampled []int32
+	constM  float64
+	constE  int
 	// log2Ref: weights are stored divided by 2^log2Ref (a power of two near
 	// the estimate from learning), so that sums of squares of weights
 	// around 1e-200 neither underflow nor lose precision.
@@ -59,6 +73,16 @@ type track struct {
 	impossible bool
 }
 
+// step is one variable as a track's draw visits it.
+type step struct {
+	v    int32 // the variable
+	card int32
+	tab2 int32 // 2·(offset of row 0): where its rows start in track.tab
+	pBeg int32 // parents are parVar[pBeg:pEnd], multipliers parMul2[pBeg:pEnd]
+	pEnd int32
+	ev   int32 // observed state in this track, or -1
+}
+
 // Sampler is an adaptive importance sampler for one network, evidence and
 // list of targets, with its importance functions learned and frozen. It is
 // immutable after NewSampler and safe for concurrent use.
@@ -69,8 +93,15 @@ type Sampler struct {
 	nodes   []node
 	parVar  []int32
 	parMul  []int32
-	prob    []float64
-	lik     []float64
+	parMul2 []int32 // 2·parMul: row offsets in track.tab
+	// relevant[v]: v is a target, observed, or an ancestor of one. The
+	// other variables are barren (Shachter 1986, Operations Research
+	// 34:871-882): summing them out leaves P(targets, evidence) unchanged,
+	// so draws skip them.
+	relevant []bool
+	rowCard  []int32 // the number of states at the start offset of every table row
+	prob     []float64
+	lik      []float64
 	// Targets of the main track.
 	tOff    []int32
 	clamped []int
@@ -79,6 +110,7 @@ type Sampler struct {
 	baseEv  []int32
 	tracks  []*track
 	learn   LearningReport
+	initial *Stats    // the initial block of every track
 	epsilon []float64 // per variable: the ε of the cutoff
 }
 
@@ -96,6 +128,7 @@ func (s *Sampler) flatten(ev *model.Evidence) error {
 		return fmt.Errorf("adaptive: %w: %d table entries exceed %d", sampling.ErrTooLarge, total, math.MaxInt32-1)
 	}
 	s.prob = make([]float64, 0, total)
+	s.rowCard = make([]int32, 0, total)
 	s.epsilon = make([]float64, n)
 	for v := range net.Vars {
 		x := &net.Vars[v]
@@ -107,9 +140,16 @@ func (s *Sampler) flatten(ev *model.Evidence) error {
 		for j, p := range x.Parents {
 			s.parVar = append(s.parVar, int32(p))
 			s.parMul = append(s.parMul, int32(x.Strides[j]*c))
+			s.parMul2 = append(s.parMul2, int32(2*x.Strides[j]*c))
 		}
 		nd.pEnd = int32(len(s.parVar))
 		s.prob = append(s.prob, x.CPT...)
+		for len(s.rowCard) < len(s.prob) {
+			s.rowCard = append(s.rowCard, int32(c))
+			for range c - 1 {
+				s.rowCard = append(s.rowCard, 0)
+			}
+		}
 		s.baseEv[v] = int32(ev.Hard[v])
 		if l := ev.Soft[v]; l != nil {
 			nd.lik = int32(len(s.lik))
@@ -130,7 +170,64 @@ func (s *Sampler) flatten(ev *model.Evidence) error {
 		s.clamped[i] = ev.Hard[t]
 		s.states += net.Vars[t].Card()
 	}
+	s.relevant = make([]bool, n)
+	for v := range net.Vars {
+		s.relevant[v] = s.baseEv[v] >= 0 || ev.Soft[v] != nil
+	}
+	for _, t := range s.targets {
+		s.relevant[t] = true
+	}
+	for v := n - 1; v >= 0; v-- {
+		if s.relevant[v] {
+			for _, p := range net.Vars[v].Parents {
+				s.relevant[p] = true
+			}
+		}
+	}
 	return nil
+}
+
+// plan lists the steps of track t and folds the factors of observed
+// variables whose parents are all observed into constM·2^constE.
+func (s *Sampler) plan(t *track) {
+	t.steps, t.sampled = t.steps[:0], t.sampled[:0]
+	t.constM, t.constE = 1, 0
+	for v := range s.nodes {
+		if !s.relevant[v] {
+			continue
+		}
+		nd := &s.nodes[v]
+		e := t.ev[v]
+		if e >= 0 {
+			off := int(nd.tab)
+			fixed := true
+			for j := nd.pBeg; j < nd.pEnd; j++ {
+				pe := t.ev[s.parVar[j]]
+				if pe < 0 {
+					fixed = false
+					break
+				}
+				off += int(pe * s.parMul[j])
+			}
+			if fixed {
+				m, x := math.Frexp(t.constM * s.prob[off+int(e)])
+				t.constM, t.constE = m, t.constE+x
+				continue
+			}
+		} else {
+			t.sampled = append(t.sampled, int32(v))
+		}
+		t.steps = append(t.steps, step{v: int32(v), card: nd.card, tab2: 2 * nd.tab, pBeg: nd.pBeg, pEnd: nd.pEnd, ev: e})
+	}
+}
+
+// fillEvidence sets the observed variables of track t in x.
+func fillEvidence(t *track, x []int32) {
+	for v, e := range t.ev {
+		if e >= 0 {
+			x[v] = e
+		}
+	}
 }
 
 // newTrack builds the importance function of a track from loopy belief
@@ -142,8 +239,7 @@ func (s *Sampler) newTrack(v, state int, soft [][]float64) *track {
 	}
 	t.q = make([]float64, len(s.prob))
 	t.floor = make([]float64, len(s.prob))
-	t.qcum = make([]float64, len(s.prob))
-	t.ratio = make([]float64, len(s.prob))
+	t.tab = make([]float64, 2*len(s.prob))
 	// Two importance functions from propagation, mixed row by row: loopy
 	// belief propagation to convergence, and a single upward pass. Loopy
 	// propagation can settle on one of several explanations of the
@@ -227,6 +323,10 @@ func (s *Sampler) newTrack(v, state int, soft [][]float64) *track {
 		}
 	}
 	t.q0 = append([]float64(nil), t.q...)
+	s.plan(t)
+	if t.constM == 0 {
+		t.impossible = true
+	}
 	s.rebuild(t)
 	return t
 }
@@ -283,12 +383,14 @@ func cutoff(q, p, fl []float64) {
 	}
 }
 
-// rebuild recomputes the cumulative rows and weight ratios of t from t.q,
-// and the bound on t's weights.
+// rebuild recomputes the draw table of t from t.q, the bound on t's
+// weights (over the steps of a draw) and the mass a draw may waste on
+// states without support.
 func (s *Sampler) rebuild(t *track) {
-	log2Max := 0.0
+	log2Max := math.Log2(t.constM) + float64(t.constE)
 	t.waste = 0
-	for u := range s.nodes {
+	for _, st := range t.steps {
+		u := int(st.v)
 		nd := &s.nodes[u]
 		c := int(nd.card)
 		rows := s.net.Vars[u].Rows
@@ -297,35 +399,50 @@ func (s *Sampler) rebuild(t *track) {
 			off := int(nd.tab) + r*c
 			p := s.prob[off : off+c]
 			q := t.q[off : off+c]
+			cum := t.tab[2*off : 2*off+c]
+			fac := t.tab[2*off+c : 2*off+2*c]
 			if e := t.ev[u]; e >= 0 {
+				// An observed variable is not drawn: its factor is P(e|row).
+				for k := range cum {
+					cum[k] = 2
+				}
+				copy(fac, p)
 				best = math.Max(best, p[e])
 				continue
 			}
 			last := 0
 			zero := 0.0
+			supported := false
 			for k := range q {
 				if q[k] > 0 {
 					last = k
 				}
 				if t.zero[u][k] {
 					zero += q[k]
+				} else if p[k] > 0 {
+					supported = true
 				}
 			}
-			worst = math.Max(worst, zero)
-			cum := 0.0
+			// A row none of whose possible states has support gives
+			// weight 0 whatever it draws: the waste lies in reaching it,
+			// which the parents' rows account for (or which samples show).
+			if supported {
+				worst = math.Max(worst, zero)
+			}
+			sum := 0.0
 			for k := range q {
-				cum += q[k]
+				sum += q[k]
+				cum[k] = sum
 				if k >= last {
-					cum = 2 // u < 1 always stops here, whatever the rounding
+					cum[k] = 2 // u < 1 always stops here, whatever the rounding
 				}
-				t.qcum[off+k] = cum
-				t.ratio[off+k] = 0
+				fac[k] = 0
 				if q[k] > 0 {
-					t.ratio[off+k] = p[k] / q[k]
-					f := t.ratio[off+k]
+					f := p[k] / q[k]
 					if nd.lik >= 0 {
 						f *= s.lik[int(nd.lik)+k]
 					}
+					fac[k] = f
 					best = math.Max(best, f)
 				}
 			}
@@ -340,59 +457,113 @@ func (s *Sampler) rebuild(t *track) {
 }
 
 // draw draws one sample x from track t's importance function and returns
-// its weight P(x, e)/Q(x) divided by 2^t.log2Ref. When offs is not nil it
-// receives the table offset of every variable's row. A sample that
-// contradicts the evidence returns 0 as soon as that is known.
-func (s *Sampler) draw(t *track, r *sampling.Rand, x []int32, offs []int32) float64 {
-	nodes, parVar, parMul, prob, lik := s.nodes, s.parVar, s.parMul, s.prob, s.lik
-	ev, qcum, ratio := t.ev, t.qcum, t.ratio
-	x = x[:len(nodes)]
-	ev = ev[:len(nodes)]
-	w := 1.0
+// its weight P(x, e)/Q(x) divided by 2^t.log2Ref. x must hold t's
+// observed states (fillEvidence); a draw sets the sampled ones. A sample
+// that contradicts the evidence returns 0 as soon as that is known.
+// drawRows is the same draw (the same numbers) that also records the
+// table offset of every sampled variable's row in offs, for learning.
+func (s *Sampler) draw(t *track, r *sampling.Rand, x []int32) float64 {
+	steps, parVar, parMul2, tab := t.steps, s.parVar, s.parMul2, t.tab
+	w := t.constM
 	shift := 0
-	for v := range nodes {
-		nd := &nodes[v]
-		off := nd.tab
-		pv := parVar[nd.pBeg:nd.pEnd]
-		pm := parMul[nd.pBeg:nd.pEnd]
+	for i := range steps {
+		st := &steps[i]
+		off := st.tab2
+		pv := parVar[st.pBeg:st.pEnd]
+		pm := parMul2[st.pBeg:st.pEnd]
 		pm = pm[:len(pv)]
 		for j, p := range pv {
 			off += x[p] * pm[j]
 		}
-		if offs != nil {
-			offs[v] = off
-		}
-		if e := ev[v]; e >= 0 {
-			x[v] = e
-			w *= prob[off+e]
+		c := st.card
+		row := tab[off : off+2*c]
+		if e := st.ev; e >= 0 {
+			w *= row[c+e]
 		} else {
-			st := pick(qcum[off:off+nd.card], r.Float64())
-			x[v] = st
-			w *= ratio[off+st]
-			if nd.lik >= 0 {
-				w *= lik[nd.lik+st]
-			}
+			k := pick(row[:c], r.Float64())
+			x[st.v] = k
+			w *= row[c+k]
 		}
-		if w < 0x1p-500 {
+		if outOfRange(w) {
 			if w == 0 {
 				return 0
 			}
-			w *= 0x1p500
-			shift--
-		} else if w > 0x1p500 {
-			w *= 0x1p-500
-			shift++
+			w, shift = rescale(w, shift)
 		}
 	}
-	return math.Ldexp(w, 500*shift-t.log2Ref)
+	return math.Ldexp(w, 500*shift+t.constE-t.log2Ref)
+}
+
+func (s *Sampler) drawRows(t *track, r *sampling.Rand, x, offs []int32) float64 {
+	steps, parVar, parMul2, tab := t.steps, s.parVar, s.parMul2, t.tab
+	w := t.constM
+	shift := 0
+	for i := range steps {
+		st := &steps[i]
+		off := st.tab2
+		pv := parVar[st.pBeg:st.pEnd]
+		pm := parMul2[st.pBeg:st.pEnd]
+		pm = pm[:len(pv)]
+		for j, p := range pv {
+			off += x[p] * pm[j]
+		}
+		c := st.card
+		row := tab[off : off+2*c]
+		if e := st.ev; e >= 0 {
+			w *= row[c+e]
+		} else {
+			k := pick(row[:c], r.Float64())
+			x[st.v] = k
+			w *= row[c+k]
+			offs[st.v] = off >> 1
+		}
+		if outOfRange(w) {
+			if w == 0 {
+				return 0
+			}
+			w, shift = rescale(w, shift)
+		}
+	}
+	return math.Ldexp(w, 500*shift+t.constE-t.log2Ref)
+}
+
+// outOfRange reports whether w (≥ 0) lies outside [2^-500, 2^501): one
+// comparison on the exponent bits.
+func outOfRange(w float64) bool {
+	return (math.Float64bits(w)>>52)-(1023-500) >= 1001
+}
+
+// rescale brings a positive w back into range, counting the shift in
+// units of 2^500.
+func rescale(w float64, shift int) (float64, int) {
+	if w < 0x1p-500 {
+		return w * 0x1p500, shift - 1
+	}
+	return w * 0x1p-500, shift + 1
 }
 
 // pick returns the state whose cumulative range holds u: the number of
-// entries of the cumulative row c that are <= u.
+// entries of the cumulative row c that are <= u. Small rows are scanned
+// without branches, since u is random and a branch on it is mispredicted
+// about every other time (the last entry is 2, so it is never counted).
 func pick(c []float64, u float64) int32 {
+	if len(c) <= 4 {
+		s := int32(0)
+		for _, ck := range c[:len(c)-1] {
+			s += b2i(u >= ck)
+		}
+		return s
+	}
 	s := int32(0)
 	for u >= c[s] {
 		s++
 	}
 	return s
+}
+
+func b2i(b bool) int32 {
+	if b {
+		return 1
+	}
+	return 0
 }

@@ -5,7 +5,6 @@ import (
 	"fmt"
 	"math"
 	"sort"
-	"sync"
 	"time"
 
 	"github.com/beliefd/beliefd/service/model"
@@ -14,14 +13,25 @@ import (
 
 // Defaults of Options.
 const (
-	DefaultLearnStages   = 4
-	DefaultLearnSamples  = 2048
+	DefaultLearnStages   = 8
+	DefaultLearnSamples  = 512
+	DefaultLearnShare    = 0.05
 	DefaultPilotSamples  = 4096
 	DefaultRareThreshold = 1e-3
 	DefaultMaxTracks     = 8
 	DefaultDefensive     = 0.2
 	// MaxTracks is the most tracks (the main one and rare-state ones) a run may have.
 	MaxTracks = 64
+	// maxLearnStages bounds Options.LearnStages (stage numbers must fit
+	// the stream ids).
+	maxLearnStages = 60
+	// maxStageSamples caps a learning stage (stages double in size).
+	maxStageSamples = 1 << 16
+	// minLearnStages are learned whatever the budget; after them learning
+	// stops when a stage's effective sample ratio is less than plateauGain
+	// better than the previous stage's, or when the budget is spent.
+	minLearnStages = 4
+	plateauGain    = 0.05
 	// Learning rate schedule η(k) = a·(b/a)^(k/K) (AIS-BN; the constants
 	// are from memory of Cheng & Druzdzel 2000).
 	learnRateA = 0.4
@@ -34,17 +44,28 @@ const (
 
 // Reserved stream ids. Sampling block k of track 0 draws from
 // NewStream(seed, k); block k of track i ≥ 1 from
-// NewStream(seed, 1<<62 | i<<50 | k); learning stage l of track i from
-// NewStream(seed, 1<<63 | i<<20 | l). Block numbers stay below 2^50
-// (sampling.HardMaxSamples), so the ids never collide.
+// NewStream(seed, 1<<62 | i<<50 | k); the initial block (k = -1) of track
+// i from NewStream(seed, 3<<62 | i); chunk c of learning stage l of track
+// i from NewStream(seed, 1<<63 | i<<40 | l<<24 | c). Block numbers stay
+// below 2^50 (sampling.HardMaxSamples), tracks below 64, stages below 64
+// and chunks below 2^24, so the ids never collide.
 func trackStream(i int, block int64) uint64 {
+	if block < 0 {
+		return 3<<62 | uint64(i)
+	}
 	if i == 0 {
 		return uint64(block)
 	}
 	return 1<<62 | uint64(i)<<50 | uint64(block)
 }
 
-func learnStream(i, stage int) uint64 { return 1<<63 | uint64(i)<<20 | uint64(stage) }
+func learnStream(i, stage int, chunk int64) uint64 {
+	return 1<<63 | uint64(i)<<40 | uint64(stage)<<24 | uint64(chunk)
+}
+
+// scaleStage is the stage number of the round that only sets the scale
+// of the weights when learning is off.
+const scaleStage = 63
 
 // Options configure the sampler. Zero values take the defaults.
 type Options struct {
@@ -74,11 +95,17 @@ type Options struct {
 	// DefaultMaxTracks; at most MaxTracks).
 	MaxTracks int
 
-	// LearnStages and LearnSamples size the learning phase per track
-	// (0 means the defaults; LearnStages < 0 keeps the importance function
-	// that propagation gives).
+	// LearnStages is the most learning stages per track, LearnSamples the
+	// samples of the first; each next stage draws twice as many (up to
+	// 65,536). 0 means the defaults; LearnStages < 0 keeps the importance
+	// function that propagation gives.
 	LearnStages  int
 	LearnSamples int
+	// LearnShare bounds the learning samples of the main track by this
+	// share of the samples the run is expected to need (from the stopping
+	// rule and the effective sample size of the latest stage); 0 means
+	// DefaultLearnShare, negative means no bound.
+	LearnShare float64
 	// PilotSamples are drawn from the learned main importance function to
 	// find rare target states (0 means DefaultPilotSamples).
 	PilotSamples int
@@ -147,8 +174,10 @@ func (o Options) validate() (Options, error) {
 		return bad("max_tracks = %d must be between 1 and %d", o.MaxTracks, MaxTracks)
 	case o.LearnSamples < 0 || o.LearnSamples > 1<<24:
 		return bad("learn_samples = %d must be between 1 and %d", o.LearnSamples, 1<<24)
-	case o.LearnStages > 64:
-		return bad("learn_stages = %d exceeds 64", o.LearnStages)
+	case o.LearnStages > maxLearnStages:
+		return bad("learn_stages = %d exceeds %d", o.LearnStages, maxLearnStages)
+	case math.IsNaN(o.LearnShare) || o.LearnShare >= 1:
+		return bad("learn_share = %g must be below 1", o.LearnShare)
 	case o.PilotSamples < 0 || o.PilotSamples > 1<<24:
 		return bad("pilot_samples = %d must be between 1 and %d", o.PilotSamples, 1<<24)
 	case math.IsNaN(o.Defensive) || o.Defensive >= 1:
@@ -182,6 +211,9 @@ func (o Options) validate() (Options, error) {
 	if o.LearnSamples == 0 {
 		o.LearnSamples = DefaultLearnSamples
 	}
+	if o.LearnShare == 0 {
+		o.LearnShare = DefaultLearnShare
+	}
 	if o.Defensive == 0 {
 		o.Defensive = DefaultDefensive
 	} else if o.Defensive < 0 {
@@ -195,21 +227,30 @@ func (o Options) validate() (Options, error) {
 
 // LearningReport describes the learning phase.
 type LearningReport struct {
-	// Stages per track and Samples drawn over all tracks (pilot included).
+	// Stages is the most stages a track learned; Samples the samples
+	// drawn over all tracks that the estimate does not use (the learning
+	// stages, and the pilot when it is not reused).
 	Stages  int
 	Samples int64
+	// InitialSamples are the samples per track of the initial block: drawn
+	// from the final importance functions at the end of learning, they
+	// open the estimate like any block.
+	InitialSamples int64
 	// Sweeps and Converged of loopy belief propagation on the main track.
 	Sweeps    int
 	Converged bool
-	Elapsed   time.Duration
+	// Elapsed is the wall time of the learning phase (propagation,
+	// learning stages, pilot), without the initial block.
+	Elapsed time.Duration
 }
 
 // NewSampler checks the query, builds the main importance function by
-// loopy belief propagation, learns it, picks the rare target states from a
-// pilot run, and builds and learns their tracks. Everything it does depends
-// on (net, ev, targets, opt) only, so every process that builds the same
-// sampler gets the same importance functions, bit for bit. ctx cancels the
-// learning phase.
+// loopy belief propagation, learns it, draws the pilot from it and picks
+// the rare target states, builds and learns their tracks, and draws the
+// initial block of every track. Everything it does depends on (net, ev,
+// targets, opt) only, not on Workers, so every process that builds the
+// same sampler gets the same importance functions and initial block, bit
+// for bit. ctx cancels the learning phase.
 func NewSampler(ctx context.Context, net *model.Network, ev *model.Evidence, targets []int, opt Options) (*Sampler, error) {
 	start := time.Now()
 	if net == nil || len(net.Vars) == 0 {
@@ -248,39 +289,73 @@ func NewSampler(ctx context.Context, net *model.Network, ev *model.Evidence, tar
 	}
 	s.tracks = []*track{main}
 	s.learn.Sweeps, s.learn.Converged = main.bp.sweeps, main.bp.converged
-	if err := s.learnTrack(ctx, main, 0); err != nil {
-		return nil, err
-	}
-	rare, err := s.pickRare(ctx, main)
+	last, err := s.learnTrack(ctx, main, 0)
 	if err != nil {
 		return nil, err
 	}
-	for _, rs := range rare {
-		s.tracks = append(s.tracks, s.newTrack(rs[0], rs[1], ev.Soft))
+	// The initial block: as many samples as the last learning stage drew,
+	// or the pilot's when the rare states are to be found.
+	rareWanted := len(s.opt.RareTargets) > 0 || s.opt.RareThreshold >= 0
+	nInit := int64(last)
+	if rareWanted {
+		nInit = max(nInit, int64(s.opt.PilotSamples))
 	}
-	// Rare tracks learn independently, in parallel: each uses its own streams.
-	var wg sync.WaitGroup
-	errs := make([]error, len(s.tracks))
-	sem := make(chan struct{}, o.Workers)
-	for i := 1; i < len(s.tracks); i++ {
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			sem <- struct{}{}
-			defer func() { <-sem }()
-			if !s.tracks[i].impossible {
-				errs[i] = s.learnTrack(ctx, s.tracks[i], i)
-			}
-		}()
-	}
-	wg.Wait()
-	for _, e := range errs {
-		if e != nil {
-			return nil, e
+	var initElapsed time.Duration
+	t0 := time.Now()
+	pilot := &TrackStats{}
+	s.initTrack(pilot, 0, int(nInit))
+	initElapsed += time.Since(t0)
+	if rareWanted {
+		rare, err := s.pickRare(ctx, pilot)
+		if err != nil {
+			return nil, err
+		}
+		for _, rs := range rare {
+			s.tracks = append(s.tracks, s.newTrack(rs[0], rs[1], ev.Soft))
 		}
 	}
-	s.learn.Elapsed = time.Since(start)
+	for i := 1; i < len(s.tracks); i++ {
+		if s.tracks[i].impossible {
+			continue
+		}
+		if _, err := s.learnTrack(ctx, s.tracks[i], i); err != nil {
+			return nil, err
+		}
+	}
+	// The initial block may not take the whole run: it keeps at least one
+	// sample per track for the blocks.
+	n := min(nInit, s.PerTrackSamples(o.Stop)-1)
+	s.initial = s.newStats()
+	t0 = time.Now()
+	if n == nInit {
+		s.initial.Tracks[0] = *pilot // the pilot opens the estimate
+	} else {
+		s.learn.Samples += pilot.N // drawn for the pilot only
+		s.initTrack(&s.initial.Tracks[0], 0, int(n))
+	}
+	for i := 1; i < len(s.tracks); i++ {
+		s.initTrack(&s.initial.Tracks[i], i, int(n))
+	}
+	initElapsed += time.Since(t0)
+	s.initial.Blocks = 0
+	s.learn.InitialSamples = max(0, n)
+	if s.opt.EpsDelta != nil {
+		s.markCrossings(s.initial, make([]float64, len(s.tracks)), -1, s.initial)
+	}
+	s.learn.Elapsed = time.Since(start) - initElapsed
 	return s, nil
+}
+
+// initTrack draws the initial block of track i into ts: n samples (none
+// when n ≤ 0) from the track's final importance function.
+func (s *Sampler) initTrack(ts *TrackStats, i, n int) {
+	st := &Stats{Tracks: make([]TrackStats, len(s.tracks))}
+	s.reset(st)
+	if n > 0 {
+		s.runTrack(s.opt.Seed, -1, n, i, &st.Tracks[i], nil)
+	}
+	*ts = st.Tracks[i]
+	ts.Blocks = 0
 }
 
 func (s *Sampler) targetIndex(v int) int {
@@ -292,144 +367,181 @@ func (s *Sampler) targetIndex(v int) int {
 	return -1
 }
 
-// learnTrack runs the learning stages of track t (number i): each stage
-// draws LearnSamples samples from the current importance function and
-// moves every table row towards the weighted frequencies of the states
-// seen in it, Q ← Q + η(k)(Q̂ − Q) (the AIS-BN update; with η = 1 it is the
-// cross-entropy update), then applies the ε-cutoff again. The scale of
-// the stored weights is set from the last stage.
-func (s *Sampler) learnTrack(ctx context.Context, t *track, i int) error {
+// learnTrack runs the learning stages of track t (number i): stage k draws
+// LearnSamples·2^k samples (at most maxStageSamples) from the current
+// importance function and moves every table row towards the weighted
+// frequencies of the states seen in it, Q ← Q + η(k)(Q̂ − Q) (the AIS-BN
+// update; with η = 1 it is the cross-entropy update), then applies the
+// ε-cutoff again. Learning stops after LearnStages stages, when the
+// effective sample ratio of a stage is less than plateauGain better than
+// the previous stage's (the function has stopped improving), or, for the
+// main track, when the next stage would take the learning samples past
+// LearnShare of the samples the run is expected to need. The scale of
+// the stored weights follows the stages. It returns the size of the last
+// stage.
+func (s *Sampler) learnTrack(ctx context.Context, t *track, i int) (int, error) {
 	stages := s.opt.LearnStages
 	m := s.opt.LearnSamples
-	x := make([]int32, len(s.nodes))
-	offs := make([]int32, len(s.nodes))
-	counts := make([]float64, len(s.prob))
-	visits := make([]int32, len(s.prob))
-	// Scale from a first look: the weights of a short run of the
-	// propagation function, in log2.
 	t.log2Ref = 0
 	if stages < 0 {
-		stages = 0
+		// No learning: one round sets the scale.
+		st, err := s.drawStage(ctx, t, i, scaleStage, m)
+		if err != nil {
+			return 0, err
+		}
+		s.addLearnSamples(st.n, 0)
+		s.rescale(t, st)
+		s.rebuild(t)
+		return m, nil
 	}
-	for k := 0; k <= stages; k++ {
-		if err := ctx.Err(); err != nil {
-			return fmt.Errorf("adaptive: learning: %w", err)
+	learned := int64(0)
+	prevRatio := 0.0
+	done := 0
+	for k := 0; k < stages; k++ {
+		st, err := s.drawStage(ctx, t, i, k, m)
+		if err != nil {
+			return 0, err
 		}
-		r := sampling.NewStream(s.opt.Seed, learnStream(i, k))
-		clear(counts)
-		clear(visits)
-		sumW := 0.0
-		for n := 0; n < m; n++ {
-			w := s.draw(t, &r, x, offs)
-			if !(w > 0) {
-				continue
-			}
-			sumW += w
-			if k == stages {
-				continue // the last round only sets the scale
-			}
-			if s.opt.temper > 0 {
-				w = math.Pow(w, s.opt.temper)
-			}
-			for v := range s.nodes {
-				if t.ev[v] >= 0 {
-					continue
-				}
-				counts[offs[v]+x[v]] += w
-				visits[offs[v]]++ // row visits counted on the row's first entry
-			}
+		learned += st.n
+		done = k + 1
+		ratio := 0.0
+		if st.sumW2 > 0 {
+			ratio = st.sumW * st.sumW / st.sumW2 / float64(st.n)
 		}
-		s.learn.Samples += int64(m)
-		if sumW > 0 && !math.IsInf(sumW, 0) {
-			// Keep stored weights near 1: shift the reference by the
-			// log2 of the mean weight of this stage.
-			t.log2Ref += int(math.Round(math.Log2(sumW / float64(m))))
-		}
-		if k == stages {
-			break
-		}
-		if sumW > 0 {
-			eta := learnRateA * math.Pow(learnRateB/learnRateA, float64(k)/float64(max(1, stages)))
-			s.updateTables(t, counts, visits, eta)
+		s.rescale(t, st)
+		if st.sumW > 0 && !math.IsInf(st.sumW, 0) {
+			eta := learnRateA * math.Pow(learnRateB/learnRateA, float64(k)/float64(max(1, stages-1)))
+			s.updateTables(t, st, eta)
 		}
 		s.rebuild(t)
+		next := min(2*m, maxStageSamples)
+		if k+1 >= minLearnStages {
+			if ratio < prevRatio*(1+plateauGain) {
+				break
+			}
+			// The effective sample ratio of a few thousand samples is
+			// optimistic when the weights are heavy-tailed (the tail is
+			// rarely drawn): judge the run by the lower of the last two.
+			if i == 0 && s.opt.LearnShare > 0 && float64(learned+int64(next)) > s.opt.LearnShare*s.expectedRun(st, math.Min(ratio, prevRatio)) {
+				break
+			}
+		}
+		prevRatio = ratio
+		if k+1 < stages {
+			m = next
+		}
 	}
-	if stages > s.learn.Stages {
-		s.learn.Stages = stages
-	}
-	s.rebuild(t)
-	return nil
+	s.addLearnSamples(learned, done)
+	return m, nil
 }
 
-// updateTables moves the rows of t.q towards the weighted frequencies in
-// counts, for rows visited at least minRowVisits times.
-func (s *Sampler) updateTables(t *track, counts []float64, visits []int32, eta float64) {
-	for v := range s.nodes {
-		if t.ev[v] >= 0 {
+// addLearnSamples records learning samples and stages (tracks learn one
+// after the other).
+func (s *Sampler) addLearnSamples(n int64, stages int) {
+	s.learn.Samples += n
+	s.learn.Stages = max(s.learn.Stages, stages)
+}
+
+// rescale keeps the stored weights of t near 1: it shifts the reference
+// by the log2 of the mean weight of the stage st.
+func (s *Sampler) rescale(t *track, st *stageStats) {
+	if st.sumW > 0 && !math.IsInf(st.sumW, 0) && st.n > 0 {
+		t.log2Ref += int(math.Round(math.Log2(st.sumW / float64(st.n))))
+	}
+}
+
+// expectedRun is the number of samples the main track is expected to
+// need under the stopping rule, judged from a learning stage: with an
+// effective sample ratio ρ, a proportion p has a variance of about
+// p(1-p)/(ρN) and P(evidence) a relative variance of about (1/ρ - 1)/N.
+// Without a precision rule it is the sample cap.
+func (s *Sampler) expectedRun(st *stageStats, ratio float64) float64 {
+	stop := s.opt.Stop
+	n := float64(stop.MaxSamples)
+	if (stop.AbsErr <= 0 && stop.RelErr <= 0) || !(ratio > 0) || !(st.sumW > 0) {
+		return n
+	}
+	z := sampling.TwoSidedZ(confidenceOf(stop))
+	need := math.Inf(1)
+	if stop.RelErr > 0 {
+		r := 0.0
+		if s.hasEv {
+			r = 1/ratio - 1
+		}
+		for i, v := range s.targets {
+			if s.clamped[i] >= 0 {
+				continue
+			}
+			off := int(s.tOff[i])
+			for k := range s.net.Vars[v].States {
+				if p := st.stateW[off+k] / st.sumW; p > 0 && p < 1 {
+					r = math.Max(r, (1-p)/(p*ratio))
+				}
+			}
+		}
+		need = math.Min(need, z*z*r/(stop.RelErr*stop.RelErr))
+	}
+	if stop.AbsErr > 0 {
+		r := 0.0
+		for i, v := range s.targets {
+			if s.clamped[i] >= 0 {
+				continue
+			}
+			off := int(s.tOff[i])
+			for k := range s.net.Vars[v].States {
+				p := st.stateW[off+k] / st.sumW
+				r = math.Max(r, p*(1-p)/ratio)
+			}
+		}
+		need = math.Min(need, z*z*r/(stop.AbsErr*stop.AbsErr))
+	}
+	return math.Min(n, need)
+}
+
+// updateTables moves the rows of t.q that the stage visited at least
+// minRowVisits times towards the weighted frequencies of their states.
+func (s *Sampler) updateTables(t *track, st *stageStats, eta float64) {
+	for _, off32 := range st.touched {
+		off := int(off32)
+		c := int(s.rowCard[off])
+		if st.visits[off] < minRowVisits {
 			continue
 		}
-		nd := &s.nodes[v]
-		c := int(nd.card)
-		rows := s.net.Vars[v].Rows
-		for r := 0; r < rows; r++ {
-			off := int(nd.tab) + r*c
-			if visits[off] < minRowVisits {
-				continue
-			}
-			cnt := counts[off : off+c]
-			sum := 0.0
-			for _, w := range cnt {
-				sum += w
-			}
-			if !(sum > 0) || math.IsInf(sum, 0) {
-				continue
-			}
-			q := t.q[off : off+c]
-			q0 := t.q0[off : off+c]
-			for k := range q {
-				q[k] += eta * (cnt[k]/sum - q[k])
-				q[k] = (1-s.opt.Defensive)*q[k] + s.opt.Defensive*q0[k]
-			}
-			cutoff(q, s.prob[off:off+c], t.floor[off:off+c])
+		cnt := st.counts[off : off+c]
+		sum := 0.0
+		for _, w := range cnt {
+			sum += w
 		}
+		if !(sum > 0) || math.IsInf(sum, 0) {
+			continue
+		}
+		q := t.q[off : off+c]
+		q0 := t.q0[off : off+c]
+		for k := range q {
+			q[k] += eta * (cnt[k]/sum - q[k])
+			q[k] = (1-s.opt.Defensive)*q[k] + s.opt.Defensive*q0[k]
+		}
+		cutoff(q, s.prob[off:off+c], t.floor[off:off+c])
 	}
 }
 
-// pickRare draws the pilot run from the learned main track and returns
-// the (variable, state) pairs that get their own tracks: the states of the
-// rare targets the caller named (all but a state whose pilot estimate is
-// at least 1/2, which the main track estimates well), then target states
-// whose pilot estimate is below the threshold, smallest first, up to
-// MaxTracks-1 tracks.
-func (s *Sampler) pickRare(ctx context.Context, main *track) ([][2]int, error) {
+// pickRare returns the (variable, state) pairs that get their own tracks,
+// judged from the pilot (the main track's initial block): the states of
+// the rare targets the caller named (all but a state whose pilot estimate
+// is at least 1/2, which the main track estimates well), then target
+// states whose pilot estimate is below the threshold, smallest first, up
+// to MaxTracks-1 tracks.
+func (s *Sampler) pickRare(ctx context.Context, pilotStats *TrackStats) ([][2]int, error) {
 	if err := ctx.Err(); err != nil {
 		return nil, fmt.Errorf("adaptive: learning: %w", err)
 	}
-	if len(s.opt.RareTargets) == 0 && s.opt.RareThreshold < 0 {
-		return nil, nil
-	}
-	// Pilot estimates of every target state.
-	r := sampling.NewStream(s.opt.Seed, learnStream(0, 1<<19))
-	x := make([]int32, len(s.nodes))
-	acc := make([]float64, s.states)
-	sumW := 0.0
-	for n := 0; n < s.opt.PilotSamples; n++ {
-		w := s.draw(main, &r, x, nil)
-		if !(w > 0) {
-			continue
-		}
-		sumW += w
-		for i, v := range s.targets {
-			acc[int(s.tOff[i])+int(x[v])] += w
-		}
-	}
-	s.learn.Samples += int64(s.opt.PilotSamples)
+	sumW := pilotStats.SumW
 	pilot := func(v, st int) float64 {
 		i := s.targetIndex(v)
 		if sumW <= 0 {
 			return 0
 		}
-		return acc[int(s.tOff[i])+st] / sumW
+		return pilotStats.StateW[int(s.tOff[i])+st] / sumW
 	}
 	room := s.opt.MaxTracks - 1
 	var out [][2]int

@@ -28,10 +28,24 @@ func (s *Sampler) Targets() []int { return append([]int(nil), s.targets...) }
 // Learning describes the learning phase.
 func (s *Sampler) Learning() LearningReport { return s.learn }
 
-// PerTrackSamples is the most samples each track draws under stop: the
-// stop's MaxSamples shared equally by the tracks.
+// PerTrackSamples is the most samples each track draws under stop (the
+// initial block included): the stop's MaxSamples shared equally by the
+// tracks.
 func (s *Sampler) PerTrackSamples(stop sampling.Stop) int64 {
 	return max(1, stop.MaxSamples/int64(len(s.tracks)))
+}
+
+// InitialStats returns a copy of the statistics of the initial block: the
+// samples drawn from the final importance functions at the end of
+// learning (the pilot among them). Every run's merged statistics start
+// from them; blocks 0, 1, 2, ... are merged onto them.
+func (s *Sampler) InitialStats() *Stats { return s.initial.Clone() }
+
+// Remaining is the samples per track left for the blocks under stop: the
+// track's share of MaxSamples less the initial block. Block b of a run
+// draws sampling.BlockLen(b, blockSize, s.Remaining(stop)) samples.
+func (s *Sampler) Remaining(stop sampling.Stop) int64 {
+	return max(0, s.PerTrackSamples(stop)-s.initial.Tracks[0].N)
 }
 
 // RunBlock draws block `block` of a run with the given seed: n samples for
@@ -47,47 +61,75 @@ func (s *Sampler) runBlock(seed uint64, block int64, n int, dst *Stats, abort *a
 	if n <= 0 {
 		return true
 	}
-	x := make([]int32, len(s.nodes))
-	var top topHeap = make([]float64, 0, TopWeights)
-	for i, t := range s.tracks {
-		ts := &dst.Tracks[i]
-		ts.N = int64(n)
-		ts.Blocks = 1
-		if t.impossible {
-			continue
+	for i := range s.tracks {
+		if !s.runTrack(seed, block, n, i, &dst.Tracks[i], abort) {
+			return false
 		}
-		r := sampling.NewStream(seed, trackStream(i, block))
-		top = top[:0]
-		var acc int64
-		var sumW, sumW2, maxW float64
-		for k := 0; k < n; k++ {
-			if k&(abortEvery-1) == abortEvery-1 && abort != nil && abort.Load() {
-				return false
-			}
-			w := s.draw(t, &r, x, nil)
-			if !(w > 0) {
-				continue
-			}
-			acc++
-			sumW += w
-			w2 := w * w
-			sumW2 += w2
-			if w > maxW {
-				maxW = w
-			}
-			top.push(w)
-			if i == 0 {
-				for ti, v := range s.targets {
-					j := int(s.tOff[ti]) + int(x[v])
-					ts.StateW[j] += w
-					ts.StateW2[j] += w2
-				}
-			}
-		}
-		ts.Accepted, ts.SumW, ts.SumW2, ts.MaxW = acc, sumW, sumW2, maxW
-		ts.Top = top.sorted(ts.Top)
 	}
 	dst.Blocks = 1
+	return true
+}
+
+// runTrack draws n samples of track i from its stream of (seed, block)
+// into ts (reset beforehand).
+func (s *Sampler) runTrack(seed uint64, block int64, n, i int, ts *TrackStats, abort *atomic.Bool) bool {
+	t := s.tracks[i]
+	ts.N = int64(n)
+	ts.Blocks = 1
+	if t.impossible {
+		return true
+	}
+	x := make([]int32, len(s.nodes))
+	fillEvidence(t, x)
+	top := topHeap(ts.Top[:0])
+	if cap(top) < TopWeights {
+		top = make([]float64, 0, TopWeights)
+	}
+	// Sums of w and w² per target state of the main track, interleaved so
+	// that both sit in one cache line.
+	var acc2 []float64
+	if i == 0 {
+		acc2 = make([]float64, 2*s.states)
+	}
+	targets, tOff := s.targets, s.tOff
+	tOff = tOff[:len(targets)]
+	r := sampling.NewStream(seed, trackStream(i, block))
+	var acc int64
+	var sumW, sumW2, maxW float64
+	for k := 0; k < n; k++ {
+		if k&(abortEvery-1) == abortEvery-1 && abort != nil && abort.Load() {
+			return false
+		}
+		w := s.draw(t, &r, x)
+		if !(w > 0) {
+			continue
+		}
+		acc++
+		sumW += w
+		w2 := w * w
+		sumW2 += w2
+		if w > maxW {
+			maxW = w
+		}
+		if len(top) < TopWeights || w > top[0] {
+			top.push(w)
+		}
+		if i == 0 {
+			for ti, v := range targets {
+				j := 2 * (tOff[ti] + x[v])
+				a := acc2[j : j+2 : j+2]
+				a[0] += w
+				a[1] += w2
+			}
+		}
+	}
+	ts.Accepted, ts.SumW, ts.SumW2, ts.MaxW = acc, sumW, sumW2, maxW
+	ts.Top = top.sorted(make([]float64, 0, len(top)))
+	if i == 0 {
+		for j := range ts.StateW {
+			ts.StateW[j], ts.StateW2[j] = acc2[2*j], acc2[2*j+1]
+		}
+	}
 	return true
 }
 
@@ -138,29 +180,21 @@ func (s *Sampler) Run(ctx context.Context) (*Result, error) {
 func (s *Sampler) run(ctx context.Context, start time.Time) (*Result, error) {
 	stop := s.opt.Stop
 	bs := s.opt.BlockSize
-	perTrack := s.PerTrackSamples(stop)
+	remaining := s.Remaining(stop)
 	buf := make([]sampling.Interval, 0, s.states+1)
 	prev := make([]float64, len(s.tracks))
 	plan := sampling.BlockPlan[*Stats]{
-		Blocks:  sampling.NumBlocks(perTrack, bs),
+		Blocks:  sampling.NumBlocks(remaining, bs),
 		Workers: s.opt.Workers,
 		Start:   start,
 		Timeout: stop.Timeout,
 		New:     s.NewStats,
+		First:   s.InitialStats,
 		Run: func(b int64, st *Stats, abort *atomic.Bool) bool {
-			return s.runBlock(s.opt.Seed, b, sampling.BlockLen(b, bs, perTrack), st, abort)
+			return s.runBlock(s.opt.Seed, b, sampling.BlockLen(b, bs, remaining), st, abort)
 		},
 		Merge: func(merged, st *Stats, b int64) error {
-			for i := range prev {
-				prev[i] = merged.Tracks[i].SumW
-			}
-			if err := merged.Merge(st); err != nil {
-				return fmt.Errorf("adaptive: %w: %w", sampling.ErrInternal, err)
-			}
-			if s.opt.EpsDelta != nil {
-				s.markCrossings(merged, prev, b, st)
-			}
-			return nil
+			return s.mergeBlock(merged, st, b, prev)
 		},
 		Stop:  func(merged *Stats) string { return s.stopReason(merged, stop, buf) },
 		Every: s.opt.ProgressEvery,
@@ -172,7 +206,30 @@ func (s *Sampler) run(ctx context.Context, start time.Time) (*Result, error) {
 	if err != nil {
 		return nil, err
 	}
+	if reason == "" && plan.Blocks == 0 {
+		reason = s.stopReason(merged, stop, buf)
+	}
 	return s.result(merged, reason, start), nil
+}
+
+// MergeBlock adds the statistics of block b (drawn by RunBlock) into
+// merged, which holds the initial block and blocks 0..b-1, and marks where
+// the (ε, δ) rule's sums crossed their threshold.
+func (s *Sampler) MergeBlock(merged, blk *Stats, b int64) error {
+	return s.mergeBlock(merged, blk, b, make([]float64, len(s.tracks)))
+}
+
+func (s *Sampler) mergeBlock(merged, blk *Stats, b int64, prev []float64) error {
+	for i := range prev {
+		prev[i] = merged.Tracks[i].SumW
+	}
+	if err := merged.Merge(blk); err != nil {
+		return fmt.Errorf("adaptive: %w: %w", sampling.ErrInternal, err)
+	}
+	if s.opt.EpsDelta != nil {
+		s.markCrossings(merged, prev, b, blk)
+	}
+	return nil
 }
 
 func (s *Sampler) result(merged *Stats, reason string, start time.Time) *Result {

@@ -35,7 +35,9 @@ type TrackStats struct {
 }
 
 // NewStats returns empty statistics laid out for s.
-func (s *Sampler) NewStats() *Stats {
+func (s *Sampler) NewStats() *Stats { return s.newStats() }
+
+func (s *Sampler) newStats() *Stats {
 	st := &Stats{Tracks: make([]TrackStats, len(s.tracks))}
 	s.reset(st)
 	return st
@@ -157,14 +159,30 @@ func (h *topHeap) push(w float64) {
 // sorted returns the kept values in decreasing order.
 func (h topHeap) sorted(dst []float64) []float64 {
 	dst = append(dst[:0], h...)
-	slices.SortFunc(dst, func(a, b float64) int {
-		switch {
-		case a > b:
-			return -1
-		case a < b:
-			return 1
-		}
-		return 0
-	})
+	slices.Sort(dst)
+	slices.Reverse(dst)
 	return dst
+}
+
+// CheckLayout reports whether st (decoded from a block's JSON, say) is laid
+// out for s: one entry per track, the main track's sums per target state,
+// a buffer of at most TopWeights largest weights.
+func (s *Sampler) CheckLayout(st *Stats) error {
+	if len(st.Tracks) != len(s.tracks) {
+		return fmt.Errorf("adaptive: %w: %d tracks, the sampler has %d", sampling.ErrStatsMismatch, len(st.Tracks), len(s.tracks))
+	}
+	for i := range st.Tracks {
+		t := &st.Tracks[i]
+		want := 0
+		if i == 0 {
+			want = s.states
+		}
+		if len(t.StateW) != want || len(t.StateW2) != want {
+			return fmt.Errorf("adaptive: %w: track %d has %d/%d state sums, want %d", sampling.ErrStatsMismatch, i, len(t.StateW), len(t.StateW2), want)
+		}
+		if len(t.Top) > TopWeights {
+			return fmt.Errorf("adaptive: %w: track %d keeps %d largest weights, at most %d", sampling.ErrStatsMismatch, i, len(t.Top), TopWeights)
+		}
+	}
+	return nil
 }

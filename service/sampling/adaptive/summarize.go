@@ -304,7 +304,11 @@ func weightedInterval(a, a2, sumW, sumW2, ess float64, nonzero int, z, conf floa
 		// with the skew of small proportions taken into account (the
 		// design-effect adjusted Wilson interval of survey sampling, Korn &
 		// Graubard 1998, from memory); with equal weights it is Wilson's.
-		n := p * (1 - p) / v
+		// n* is capped at Kish's effective sample size of the whole
+		// sample: a rare state the importance function over-samples has
+		// light weights on its few hits, whose own variance then claims
+		// more than the sample holds (see the package comment).
+		n := math.Min(p*(1-p)/v, ess)
 		w := sampling.Wilson(p*n, n, conf)
 		iv.Lo, iv.Hi = math.Max(0, w.Lo-slack), math.Min(1, w.Hi+slack)
 	}

@@ -36,6 +36,16 @@ type Config struct {
 	SVG io.Writer
 	// Log receives progress lines (may be nil).
 	Log io.Writer
+	// Parts selects the tables to measure: "top", "evidence", "mse"
+	// (empty: all three).
+	Parts []string
+}
+
+// Parts are the names of the benchmark's tables.
+var Parts = []string{"top", "evidence", "mse"}
+
+func (c Config) want(part string) bool {
+	return len(c.Parts) == 0 || slices.Contains(c.Parts, part)
 }
 
 // relTarget is the relative half-width asked for, at 95%.
@@ -83,6 +93,12 @@ type MSERow struct {
 	Seconds           float64
 	LW, Adaptive      float64 // mean squared error over target states, averaged over seeds
 	LWSamples, ADSamp float64
+	Learning          float64 // mean share of the adaptive run's wall time spent learning
+	// Ceiling is the ratio LW / adaptive that independent draws from the
+	// exact posterior would reach at likelihood weighting's speed: the
+	// mean squared error times the samples of likelihood weighting over
+	// the mean of p(1-p) over the target states.
+	Ceiling float64
 }
 
 // Run runs the benchmark and writes its tables to w.
@@ -94,35 +110,48 @@ func Run(ctx context.Context, w io.Writer, cfg Config) error {
 		}
 	}
 	start := time.Now()
-	top, err := rareTop(ctx, cfg)
-	if err != nil {
-		return err
+	for _, p := range cfg.Parts {
+		if !slices.Contains(Parts, p) {
+			return fmt.Errorf("adaptivebench: unknown part %q (want one of %v)", p, Parts)
+		}
 	}
-	ev, err := rareEvidence(ctx, cfg)
-	if err != nil {
-		return err
+	if cfg.want("top") {
+		top, err := rareTop(ctx, cfg)
+		if err != nil {
+			return err
+		}
+		fmt.Fprintf(w, "Rare top event, no evidence: samples to a %.0f%% relative half-width at 95%% (P(top) by junction tree)\n", 100*relTarget)
+		writeRare(w, top)
+		fmt.Fprintln(w)
 	}
-	mse, err := equalTime(ctx, cfg)
-	if err != nil {
-		return err
+	if cfg.want("evidence") {
+		ev, err := rareEvidence(ctx, cfg)
+		if err != nil {
+			return err
+		}
+		fmt.Fprintf(w, "Unlikely evidence: samples to a %.0f%% relative half-width on P(evidence) at 95%%\n", 100*relTarget)
+		writeRare(w, ev)
+		fmt.Fprintln(w)
 	}
-	fmt.Fprintf(w, "Rare top event, no evidence: samples to a %.0f%% relative half-width at 95%% (P(top) by junction tree)\n", 100*relTarget)
-	writeRare(w, top)
-	fmt.Fprintf(w, "\nUnlikely evidence: samples to a %.0f%% relative half-width on P(evidence) at 95%%\n", 100*relTarget)
-	writeRare(w, ev)
-	fmt.Fprintf(w, "\nRandom multi-state networks, unlikely evidence: mean squared error of the posterior marginals at equal wall time\n")
-	tw := tabwriter.NewWriter(w, 2, 8, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprintln(tw, "case\tP(evidence)\tseconds\tMSE LW\tMSE adaptive\tLW / adaptive\tsamples LW\tsamples adaptive\t")
-	for _, r := range mse {
-		fmt.Fprintf(tw, "%s\t%.3g\t%.2f\t%.3g\t%.3g\t%.3g\t%.3g\t%.3g\t\n", r.Case, r.Evidence, r.Seconds, r.LW, r.Adaptive, r.LW/r.Adaptive, r.LWSamples, r.ADSamp)
+	if cfg.want("mse") {
+		mse, err := equalTime(ctx, cfg)
+		if err != nil {
+			return err
+		}
+		fmt.Fprintf(w, "Random multi-state networks, unlikely evidence: mean squared error of the posterior marginals at equal wall time\n")
+		tw := tabwriter.NewWriter(w, 2, 8, 2, ' ', tabwriter.AlignRight)
+		fmt.Fprintln(tw, "case\tP(evidence)\tseconds\tMSE LW\tMSE adaptive\tLW / adaptive\tceiling\tsamples LW\tsamples adaptive\tlearning share\t")
+		for _, r := range mse {
+			fmt.Fprintf(tw, "%s\t%.3g\t%.2f\t%.3g\t%.3g\t%.3g\t%.3g\t%.3g\t%.3g\t%.1f%%\t\n", r.Case, r.Evidence, r.Seconds, r.LW, r.Adaptive, r.LW/r.Adaptive, r.Ceiling, r.LWSamples, r.ADSamp, 100*r.Learning)
+		}
+		tw.Flush()
 	}
-	tw.Flush()
 	if cfg.SVG != nil {
 		if err := plot(ctx, cfg); err != nil {
 			return err
 		}
 	}
-	fmt.Fprintf(w, "\n(%s in all; likelihood weighting's sample counts come from its exact variance, computed by the junction tree, since it would need hours)\n", time.Since(start).Round(time.Second))
+	fmt.Fprintf(w, "(%s in all; likelihood weighting's sample counts come from its exact variance, computed by the junction tree, since it would need hours)\n", time.Since(start).Round(time.Second))
 	return nil
 }
 
@@ -382,7 +411,7 @@ func equalTime(ctx context.Context, cfg Config) ([]MSERow, error) {
 	if cfg.Quick {
 		nets, secs = 2, 0.5
 	}
-	reps := max(2, cfg.Seeds/3)
+	reps := max(2, cfg.Seeds/2)
 	var rows []MSERow
 	for k := 0; k < nets; k++ {
 		rng := rand.New(rand.NewPCG(uint64(20+k), 5))
@@ -452,7 +481,16 @@ func equalTime(ctx context.Context, cfg Config) ([]MSERow, error) {
 			row.Adaptive += mse(ad.Estimate.Marginals) / float64(reps)
 			row.LWSamples += float64(lw.Samples) / float64(reps)
 			row.ADSamp += float64(ad.Estimate.Samples) / float64(reps)
+			row.Learning += ad.Learning.Elapsed.Seconds() / ad.Estimate.Elapsed.Seconds() / float64(reps)
 		}
+		ideal, states := 0.0, 0
+		for i := range targets {
+			for _, p := range post.Marginals[i] {
+				ideal += p * (1 - p)
+				states++
+			}
+		}
+		row.Ceiling = row.LW * row.LWSamples / (ideal / float64(states))
 		logf(cfg, "mse %+v", row)
 		rows = append(rows, row)
 	}
