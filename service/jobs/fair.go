@@ -56,9 +56,15 @@ type fairQueue struct {
 
 // fairTenant is a tenant's state.
 type fairTenant struct {
-	pass float64 // worker seconds received / share
-	avg  float64 // moving average of its units' durations, seconds; 0: none timed
+	pass float64 // worker seconds received / share, with the charges of picks under way
+	// inflight is the part of pass charged by picks not settled yet; pass
+	// - inflight, the settled pass, only grows while the tenant is known.
+	inflight float64
+	avg      float64 // moving average of its units' durations, seconds; 0: none timed
 }
+
+// settled is the pass without the charges of picks under way.
+func (t *fairTenant) settled() float64 { return t.pass - t.inflight }
 
 // fairGroup is one tenant's claimable jobs in the store's order.
 type fairGroup struct {
@@ -96,10 +102,12 @@ func (q *fairQueue) round(cands []Claimable) []fairGroup {
 	}
 	q.mu.Lock()
 	defer q.mu.Unlock()
+	// The virtual time follows settled passes: a charge that is later
+	// refunded must not carry it past a tenant that never went idle.
 	v, seen := 0.0, false
 	for _, g := range groups {
-		if t, ok := q.ts[g.tenant]; ok && (!seen || t.pass < v) {
-			v, seen = t.pass, true
+		if t, ok := q.ts[g.tenant]; ok && (!seen || t.settled() < v) {
+			v, seen = t.settled(), true
 		}
 	}
 	if !seen {
@@ -110,12 +118,12 @@ func (q *fairQueue) round(cands []Claimable) []fairGroup {
 		t, ok := q.ts[g.tenant]
 		if !ok {
 			q.ts[g.tenant] = &fairTenant{pass: q.vtime}
-		} else if t.pass < q.vtime {
-			t.pass = q.vtime
+		} else if t.settled() < q.vtime {
+			t.pass += q.vtime - t.settled()
 		}
 	}
 	for name, t := range q.ts {
-		if _, active := at[name]; !active && t.pass <= q.vtime {
+		if _, active := at[name]; !active && t.inflight == 0 && t.pass <= q.vtime {
 			delete(q.ts, name)
 		}
 	}
@@ -151,6 +159,7 @@ func (q *fairQueue) pick(groups []fairGroup, tried []bool) (int, fairTicket) {
 	}
 	tk := fairTicket{tenant: name, charged: expect / share, share: share}
 	t.pass += tk.charged
+	t.inflight += tk.charged
 	return best, tk
 }
 
@@ -173,6 +182,12 @@ func (q *fairQueue) done(tk fairTicket, worked bool, d time.Duration) {
 	q.mu.Lock()
 	defer q.mu.Unlock()
 	t, ok := q.ts[tk.tenant]
+	if ok {
+		t.inflight -= tk.charged
+		if t.inflight < 1e-12 {
+			t.inflight = 0 // rounding of many charges and refunds
+		}
+	}
 	if !worked {
 		if ok {
 			t.pass -= tk.charged
