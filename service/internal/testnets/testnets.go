@@ -56,6 +56,11 @@ type RandomOptions struct {
 	MaxStates  int     // states per variable, 2..MaxStates
 	ZeroProb   float64 // chance that a table entry is an exact zero (rows keep one positive entry)
 	Window     int     // parents are drawn from the previous Window variables (0 = all)
+	// Leaves makes the last Leaves of the Vars variables childless effects:
+	// each takes 1..MaxParents parents drawn from all the earlier variables
+	// that are not among these last ones (Window does not apply), and none
+	// of them is a parent of another. 0 leaves the network as above.
+	Leaves int
 }
 
 // Random generates a random network: variables in topological order, each
@@ -75,15 +80,22 @@ func Random(rng *rand.Rand, o RandomOptions) *model.Document {
 			states[k] = fmt.Sprintf("s%d", k)
 		}
 		var parents []string
-		lo := 0
+		lo, hi := 0, i
 		if o.Window > 0 && i > o.Window {
 			lo = i - o.Window
 		}
+		np := 0
 		if i > 0 && o.MaxParents > 0 {
-			np := rng.IntN(o.MaxParents + 1)
+			np = rng.IntN(o.MaxParents + 1)
+		}
+		if first := o.Vars - o.Leaves; o.Leaves > 0 && i >= first && first > 0 && o.MaxParents > 0 {
+			lo, hi = 0, first
+			np = 1 + rng.IntN(o.MaxParents)
+		}
+		if np > 0 {
 			seen := map[int]bool{}
-			for len(parents) < np && len(seen) < i-lo {
-				p := lo + rng.IntN(i-lo)
+			for len(parents) < np && len(seen) < hi-lo {
+				p := lo + rng.IntN(hi-lo)
 				if !seen[p] {
 					seen[p] = true
 					parents = append(parents, fmt.Sprintf("v%d", p))

@@ -32,6 +32,7 @@ const (
 	// better than the previous stage's, or when the budget is spent.
 	minLearnStages = 4
 	plateauGain    = 0.05
+	minStageESS    = 100
 	// Learning rate schedule η(k) = a·(b/a)^(k/K) (AIS-BN; the constants
 	// are from memory of Cheng & Druzdzel 2000).
 	learnRateA = 0.4
@@ -416,7 +417,14 @@ func (s *Sampler) learnTrack(ctx context.Context, t *track, i int) (int, error) 
 		s.rebuild(t)
 		next := min(2*m, maxStageSamples)
 		if k+1 >= minLearnStages {
-			if ratio < prevRatio*(1+plateauGain) {
+			// On the main track a plateau is judged only on a stage with
+			// enough effective samples: below minStageESS the ratio is
+			// mostly noise and the update follows a few weights, so the
+			// next, twice larger stage is drawn, within the budget below.
+			// Rare-state tracks have no such budget (learning them longer
+			// made rare top events take 1.5 times the samples), so they
+			// stop on any plateau.
+			if ratio < prevRatio*(1+plateauGain) && (i != 0 || ratio*float64(st.n) >= minStageESS) {
 				break
 			}
 			// The effective sample ratio of a few thousand samples is

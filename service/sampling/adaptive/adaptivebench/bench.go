@@ -4,7 +4,9 @@
 // relative half-width on a rare top event and on unlikely evidence,
 // interval coverage over repeated seeds, the share of the run spent
 // learning, and the mean squared error of posterior marginals at equal
-// wall time on random multi-state networks. It backs cmd/beliefd-bench.
+// wall time on random multi-state networks, with evidence on observed
+// effects of hidden causes (alarms) and on a chain of consecutive
+// variables. It backs cmd/beliefd-bench.
 package adaptivebench
 
 import (
@@ -32,7 +34,7 @@ type Config struct {
 	Seeds int
 	// Workers per run (0: GOMAXPROCS).
 	Workers int
-	// SVG, when set, receives the plot of relative error against samples.
+	// SVG, when set, receives the plots of error against samples.
 	SVG io.Writer
 	// Log receives progress lines (may be nil).
 	Log io.Writer
@@ -89,11 +91,16 @@ type RareRow struct {
 // MSERow is one line of the equal-time comparison.
 type MSERow struct {
 	Case              string
+	Placement         string // evidence placement (see Placements)
+	Observed          int    // observed variables
 	Evidence          float64
 	Seconds           float64
 	LW, Adaptive      float64 // mean squared error over target states, averaged over seeds
 	LWSamples, ADSamp float64
 	Learning          float64 // mean share of the adaptive run's wall time spent learning
+	// LWESS and ADESS are the mean effective sample ratios (Kish's ESS over
+	// the samples) of the two methods.
+	LWESS, ADESS float64
 	// Ceiling is the ratio LW / adaptive that independent draws from the
 	// exact posterior would reach at likelihood weighting's speed: the
 	// mean squared error times the samples of likelihood weighting over
@@ -138,11 +145,13 @@ func Run(ctx context.Context, w io.Writer, cfg Config) error {
 		if err != nil {
 			return err
 		}
-		fmt.Fprintf(w, "Random multi-state networks, unlikely evidence: mean squared error of the posterior marginals at equal wall time\n")
+		fmt.Fprintf(w, "Random networks (40 variables, 2-4 states), unlikely evidence: mean squared error of the posterior marginals at equal wall time\n")
+		fmt.Fprintf(w, "(chain: the last 12 variables observed; alarms: 10 childless effects of hidden causes observed; each in its least likely state)\n")
 		tw := tabwriter.NewWriter(w, 2, 8, 2, ' ', tabwriter.AlignRight)
-		fmt.Fprintln(tw, "case\tP(evidence)\tseconds\tMSE LW\tMSE adaptive\tLW / adaptive\tceiling\tsamples LW\tsamples adaptive\tlearning share\t")
+		fmt.Fprintln(tw, "placement\tcase\tobserved\tP(evidence)\tseconds\tMSE LW\tMSE adaptive\tLW / adaptive\tceiling\tESS LW\tESS adaptive\tsamples LW\tsamples adaptive\tlearning share\t")
 		for _, r := range mse {
-			fmt.Fprintf(tw, "%s\t%.3g\t%.2f\t%.3g\t%.3g\t%.3g\t%.3g\t%.3g\t%.3g\t%.1f%%\t\n", r.Case, r.Evidence, r.Seconds, r.LW, r.Adaptive, r.LW/r.Adaptive, r.Ceiling, r.LWSamples, r.ADSamp, 100*r.Learning)
+			fmt.Fprintf(tw, "%s\t%s\t%d\t%.3g\t%.2f\t%.3g\t%.3g\t%.3g\t%.3g\t%.2g%%\t%.2g%%\t%.3g\t%.3g\t%.1f%%\t\n", r.Placement, r.Case, r.Observed, r.Evidence, r.Seconds, r.LW, r.Adaptive, r.LW/r.Adaptive, r.Ceiling,
+				100*r.LWESS, 100*r.ADESS, r.LWSamples, r.ADSamp, 100*r.Learning)
 		}
 		tw.Flush()
 	}
@@ -401,11 +410,178 @@ func squaredEvidenceNet(doc *model.Document, hard map[string]string) (*model.Net
 	return model.Compile(&c, model.Limits{})
 }
 
+// Placement is how the equal-time comparison chooses the evidence on a
+// random network.
+type Placement struct {
+	Name string
+	// Net generates the network from its seed's generator.
+	Net func(rng *rand.Rand) *model.Document
+	// Observed lists the variables to observe, in the order they are set.
+	Observed func(net *model.Network) []int
+}
+
+// Placements are the two evidence placements of the equal-time table.
+//
+// "chain": the last 12 variables in topological order, consecutive, so
+// most of their parents are observed too.
+//
+// "alarms": 10 leaves (variables without children) spread evenly over
+// the leaves in topological order, on networks whose last 10 variables
+// are effects of causes anywhere in the network (RandomOptions.Leaves):
+// observed effects whose causes are hidden, as alarms are.
+var Placements = []Placement{
+	{
+		Name: "chain",
+		Net: func(rng *rand.Rand) *model.Document {
+			return testnets.Random(rng, testnets.RandomOptions{Vars: 40, MaxParents: 3, MaxStates: 4, Window: 6, ZeroProb: 0.4})
+		},
+		Observed: func(net *model.Network) []int {
+			var obs []int
+			for v := len(net.Vars) - 12; v < len(net.Vars); v++ {
+				obs = append(obs, v)
+			}
+			return obs
+		},
+	},
+	{
+		Name: "alarms",
+		Net: func(rng *rand.Rand) *model.Document {
+			return testnets.Random(rng, testnets.RandomOptions{Vars: 40, Leaves: 10, MaxParents: 3, MaxStates: 4, Window: 6, ZeroProb: 0.4})
+		},
+		Observed: func(net *model.Network) []int { return spreadLeaves(net, 10) },
+	},
+}
+
+// spreadLeaves returns n of the network's leaves, evenly spaced over all
+// of them in topological order (all of them when there are at most n).
+func spreadLeaves(net *model.Network, n int) []int {
+	var leaves []int
+	for i, v := range net.Vars {
+		if len(v.Children) == 0 {
+			leaves = append(leaves, i)
+		}
+	}
+	if len(leaves) <= n {
+		return leaves
+	}
+	out := make([]int, n)
+	for k := range out {
+		out[k] = leaves[k*(len(leaves)-1)/(n-1)]
+	}
+	return out
+}
+
+// leastLikely sets each variable of obs, in order, to its least likely
+// state of positive probability given the evidence set so far (ties to
+// the lower state).
+func leastLikely(net *model.Network, eng *exact.Engine, obs []int) (map[string]string, error) {
+	hard := map[string]string{}
+	for _, v := range obs {
+		sofar, err := net.ResolveEvidence(hard, nil)
+		if err != nil {
+			return nil, err
+		}
+		post, err := eng.Posterior(sofar, []int{v})
+		if err != nil {
+			return nil, err
+		}
+		m := post.Marginals[0]
+		best := -1
+		for s := range m {
+			if m[s] > 0 && (best < 0 || m[s] < m[best]) {
+				best = s
+			}
+		}
+		hard[net.Vars[v].Name] = net.Vars[v].States[best]
+	}
+	return hard, nil
+}
+
 // equalTime compares likelihood weighting and the adaptive sampler on
 // random networks of a few dozen multi-state variables, each given the
 // same wall time, by the mean squared error of every posterior marginal
-// of the unobserved variables.
+// of the unobserved variables, for each evidence placement.
 func equalTime(ctx context.Context, cfg Config) ([]MSERow, error) {
+	var rows []MSERow
+	for _, pl := range Placements {
+		r, err := equalTimePlacement(ctx, cfg, pl)
+		if err != nil {
+			return nil, err
+		}
+		rows = append(rows, r...)
+	}
+	return rows, nil
+}
+
+// mseCase is a random network with its evidence and exact posterior.
+type mseCase struct {
+	name    string
+	net     *model.Network
+	ev      *model.Evidence
+	targets []int
+	post    *exact.Posterior
+	// observed is the number of observed variables.
+	observed int
+}
+
+func newMSECase(pl Placement, k int) (*mseCase, error) {
+	// The chain placement keeps the seeds it has always had.
+	seed := uint64(20 + k)
+	if pl.Name != "chain" {
+		seed = uint64(40 + k)
+	}
+	doc := pl.Net(rand.New(rand.NewPCG(seed, 5)))
+	net, err := model.Compile(doc, model.Limits{})
+	if err != nil {
+		return nil, err
+	}
+	eng, err := compileExact(net)
+	if err != nil {
+		return nil, err
+	}
+	hard, err := leastLikely(net, eng, pl.Observed(net))
+	if err != nil {
+		return nil, err
+	}
+	ev, err := net.ResolveEvidence(hard, nil)
+	if err != nil {
+		return nil, err
+	}
+	targets, _ := net.ResolveTargets(nil, ev)
+	post, err := eng.Posterior(ev, targets)
+	if err != nil {
+		return nil, err
+	}
+	return &mseCase{name: fmt.Sprintf("random-%d", k), net: net, ev: ev, targets: targets, post: post, observed: len(hard)}, nil
+}
+
+// mse is the mean squared error of the marginals m over every target state.
+func (c *mseCase) mse(m [][]sampling.Interval) float64 {
+	s, n := 0.0, 0
+	for i := range c.targets {
+		for st := range m[i] {
+			d := m[i][st].P - c.post.Marginals[i][st]
+			s += d * d
+			n++
+		}
+	}
+	return s / float64(n)
+}
+
+// meanPQ is the mean of p(1-p) over the target states: the squared error
+// per sample of independent draws from the exact posterior.
+func (c *mseCase) meanPQ() float64 {
+	ideal, states := 0.0, 0
+	for i := range c.targets {
+		for _, p := range c.post.Marginals[i] {
+			ideal += p * (1 - p)
+			states++
+		}
+	}
+	return ideal / float64(states)
+}
+
+func equalTimePlacement(ctx context.Context, cfg Config, pl Placement) ([]MSERow, error) {
 	nets := 4
 	secs := 2.0
 	if cfg.Quick {
@@ -414,59 +590,12 @@ func equalTime(ctx context.Context, cfg Config) ([]MSERow, error) {
 	reps := max(2, cfg.Seeds/2)
 	var rows []MSERow
 	for k := 0; k < nets; k++ {
-		rng := rand.New(rand.NewPCG(uint64(20+k), 5))
-		doc := testnets.Random(rng, testnets.RandomOptions{Vars: 40, MaxParents: 3, MaxStates: 4, Window: 6, ZeroProb: 0.4})
-		net, err := model.Compile(doc, model.Limits{})
+		c, err := newMSECase(pl, k)
 		if err != nil {
 			return nil, err
 		}
-		eng, err := compileExact(net)
-		if err != nil {
-			return nil, err
-		}
-		// Evidence: the last 12 variables, one after the other, each in its
-		// least likely state of positive probability given the evidence so
-		// far (ties to the lower state).
-		hard := map[string]string{}
-		for v := len(net.Vars) - 12; v < len(net.Vars); v++ {
-			sofar, err := net.ResolveEvidence(hard, nil)
-			if err != nil {
-				return nil, err
-			}
-			post, err := eng.Posterior(sofar, []int{v})
-			if err != nil {
-				return nil, err
-			}
-			m := post.Marginals[0]
-			best := -1
-			for s := range m {
-				if m[s] > 0 && (best < 0 || m[s] < m[best]) {
-					best = s
-				}
-			}
-			hard[net.Vars[v].Name] = net.Vars[v].States[best]
-		}
-		ev, err := net.ResolveEvidence(hard, nil)
-		if err != nil {
-			return nil, err
-		}
-		targets, _ := net.ResolveTargets(nil, ev)
-		post, err := eng.Posterior(ev, targets)
-		if err != nil {
-			return nil, err
-		}
-		row := MSERow{Case: fmt.Sprintf("random-%d (40 vars, 2-4 states)", k), Evidence: math.Exp(post.LogEvidence), Seconds: secs}
-		mse := func(m [][]sampling.Interval) float64 {
-			s, n := 0.0, 0
-			for i := range targets {
-				for st := range m[i] {
-					d := m[i][st].P - post.Marginals[i][st]
-					s += d * d
-					n++
-				}
-			}
-			return s / float64(n)
-		}
+		net, ev, targets := c.net, c.ev, c.targets
+		row := MSERow{Case: c.name, Placement: pl.Name, Observed: c.observed, Evidence: math.Exp(c.post.LogEvidence), Seconds: secs}
 		stop := sampling.Stop{Timeout: time.Duration(secs * float64(time.Second)), MaxSamples: sampling.PrecisionMaxSamples}
 		for r := 0; r < reps; r++ {
 			lw, err := sampling.Run(ctx, net, ev, targets, sampling.Options{Method: sampling.MethodLikelihoodWeighting, Seed: uint64(r + 1), Stop: stop, Workers: cfg.Workers})
@@ -477,20 +606,15 @@ func equalTime(ctx context.Context, cfg Config) ([]MSERow, error) {
 			if err != nil {
 				return nil, err
 			}
-			row.LW += mse(lw.Marginals) / float64(reps)
-			row.Adaptive += mse(ad.Estimate.Marginals) / float64(reps)
+			row.LW += c.mse(lw.Marginals) / float64(reps)
+			row.Adaptive += c.mse(ad.Estimate.Marginals) / float64(reps)
 			row.LWSamples += float64(lw.Samples) / float64(reps)
 			row.ADSamp += float64(ad.Estimate.Samples) / float64(reps)
+			row.LWESS += lw.EffectiveSamples / float64(lw.Samples) / float64(reps)
+			row.ADESS += ad.Estimate.EffectiveSamples / float64(ad.Estimate.Samples) / float64(reps)
 			row.Learning += ad.Learning.Elapsed.Seconds() / ad.Estimate.Elapsed.Seconds() / float64(reps)
 		}
-		ideal, states := 0.0, 0
-		for i := range targets {
-			for _, p := range post.Marginals[i] {
-				ideal += p * (1 - p)
-				states++
-			}
-		}
-		row.Ceiling = row.LW * row.LWSamples / (ideal / float64(states))
+		row.Ceiling = row.LW * row.LWSamples / c.meanPQ()
 		logf(cfg, "mse %+v", row)
 		rows = append(rows, row)
 	}
