@@ -5,12 +5,14 @@ import (
 	"context"
 	"encoding/json"
 	"errors"
+	"fmt"
 	"strings"
 	"testing"
 
 	"github.com/beliefd/beliefd/service/infer"
 	"github.com/beliefd/beliefd/service/internal/testnets"
 	"github.com/beliefd/beliefd/service/jobs"
+	"github.com/beliefd/beliefd/service/jobs/memstore"
 	"github.com/beliefd/beliefd/service/model"
 )
 
@@ -265,5 +267,66 @@ func TestTenantUsageIsForAdmins(t *testing.T) {
 	want := `[{"tenant":"alpha","queued":2,"running":0,"quotas":{"max_unfinished":5}},{"tenant":"zeta","queued":0,"running":0,"quotas":{"max_unfinished":4}}]`
 	if string(got) != want {
 		t.Errorf("usage %s, want %s", got, want)
+	}
+}
+
+// hidingStore leaves one tenant's jobs out of ClaimableJobs, as a store
+// does for a tenant whose jobs all run with no block left to hand out.
+type hidingStore struct {
+	jobs.Store
+	hide string
+}
+
+func (h hidingStore) ClaimableJobs(ctx context.Context, limit int) ([]jobs.Claimable, error) {
+	cl, err := h.Store.ClaimableJobs(ctx, limit)
+	out := cl[:0]
+	for _, c := range cl {
+		if c.Tenant != h.hide {
+			out = append(out, c)
+		}
+	}
+	return out, err
+}
+
+// TenantUsage answers from the store's per-tenant counts, and reads the
+// job records when those miss a tenant: both ways give the counts that
+// listing every job gives.
+func TestTenantUsageCountsEveryTenant(t *testing.T) {
+	for _, hide := range []string{"", "gamma"} {
+		st := memstore.New(memstore.Options{})
+		svc, err := jobs.NewService(hidingStore{Store: st, hide: hide}, jobs.Config{Logger: quietLogger()}, nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		ctx := context.Background()
+		q := &infer.Query{Model: "chest-clinic", Method: infer.MethodExact, Targets: []string{"tub"}}
+		want := map[string]int{"alpha": 2, "gamma": 3, "": 1}
+		for tenant, n := range want {
+			as := asTenant(ctx, tenant, false)
+			putAs(t, as, svc, testnets.ChestClinic())
+			for range n {
+				if _, _, err := svc.Submit(as, q); err != nil {
+					t.Fatal(err)
+				}
+			}
+		}
+		us, err := svc.TenantUsage(asTenant(ctx, "ops", true), []string{"alpha", "zeta"})
+		if err != nil {
+			t.Fatal(err)
+		}
+		got := map[string]int{}
+		var names []string
+		for _, u := range us {
+			got[u.Tenant] = u.Queued + u.Running
+			names = append(names, u.Tenant)
+		}
+		if fmt.Sprint(names) != fmt.Sprint([]string{"", "alpha", "gamma", "zeta"}) {
+			t.Errorf("hiding %q: tenants %q; want the open tenant, alpha, gamma and zeta in order", hide, names)
+		}
+		for tenant, n := range want {
+			if got[tenant] != n {
+				t.Errorf("hiding %q: tenant %q has %d unfinished; want %d", hide, tenant, got[tenant], n)
+			}
+		}
 	}
 }
