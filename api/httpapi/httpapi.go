@@ -106,19 +106,41 @@ type handler struct {
 	log  *slog.Logger
 }
 
+// route is a method's handler on a path.
+type route struct {
+	method string
+	fn     http.HandlerFunc
+}
+
+// routePath is a path with the handlers of its methods.
+type routePath struct {
+	path   string
+	routes []route
+}
+
+// register puts each route on mux through wrap, with HEAD beside GET, and
+// answers every other method on a known path with 405 in the error shape.
+func (h *handler) register(mux *http.ServeMux, paths []routePath) {
+	for _, p := range paths {
+		var allowed []string
+		for _, r := range p.routes {
+			pattern := r.method + " " + p.path
+			mux.Handle(pattern, h.wrap(pattern, r.fn))
+			allowed = append(allowed, r.method)
+			if r.method == "GET" {
+				allowed = append(allowed, "HEAD")
+			}
+		}
+		mux.Handle(p.path, h.wrap(p.path, h.methodNotAllowed(strings.Join(allowed, ", "))))
+	}
+}
+
 // New returns the HTTP handler of the API over svc.
 func New(svc Service, opts Options) http.Handler {
 	opts = opts.withDefaults()
 	h := &handler{svc: svc, opts: opts, log: opts.Logger}
 	mux := http.NewServeMux()
-	type route struct {
-		method string
-		fn     http.HandlerFunc
-	}
-	paths := []struct {
-		path   string
-		routes []route
-	}{
+	paths := []routePath{
 		{"/v1/models", []route{{"POST", h.createModel}, {"GET", h.listModels}}},
 		{"/v1/models/{name}", []route{{"GET", h.getModel}, {"DELETE", h.deleteModel}}},
 		{"/v1/jobs", []route{{"POST", h.submitJob}, {"GET", h.listJobs}}},
@@ -130,30 +152,12 @@ func New(svc Service, opts Options) http.Handler {
 		{"/readyz", []route{{"GET", h.readyz}}},
 	}
 	if opts.Admin != nil {
-		paths = append(paths, struct {
-			path   string
-			routes []route
-		}{"/v1/admin/tenants", []route{{"GET", opts.Admin.ServeHTTP}}})
+		paths = append(paths, routePath{"/v1/admin/tenants", []route{{"GET", opts.Admin.ServeHTTP}}})
 	}
 	if opts.MetricsHandler != nil {
-		paths = append(paths, struct {
-			path   string
-			routes []route
-		}{"/metrics", []route{{"GET", opts.MetricsHandler.ServeHTTP}}})
+		paths = append(paths, routePath{"/metrics", []route{{"GET", opts.MetricsHandler.ServeHTTP}}})
 	}
-	for _, p := range paths {
-		var allowed []string
-		for _, r := range p.routes {
-			pattern := r.method + " " + p.path
-			mux.Handle(pattern, h.wrap(pattern, r.fn))
-			allowed = append(allowed, r.method)
-			if r.method == "GET" {
-				allowed = append(allowed, "HEAD")
-			}
-		}
-		// Every other method on a known path: 405 in the error shape.
-		mux.Handle(p.path, h.wrap(p.path, h.methodNotAllowed(strings.Join(allowed, ", "))))
-	}
+	h.register(mux, paths)
 	// The web page at / and its files under web.Prefix (api/web).
 	page := web.Handler(http.HandlerFunc(h.notFound))
 	mux.Handle("GET /{$}", h.wrap("GET /", page.ServeHTTP))

@@ -5,7 +5,6 @@ import (
 	"fmt"
 	"net/http"
 	"net/url"
-	"strings"
 	"time"
 
 	"github.com/beliefd/beliefd/api"
@@ -23,29 +22,11 @@ type standingHandler struct {
 // 405 in the error shape for the other methods.
 func (h *handler) routeStanding(mux *http.ServeMux, svc api.StandingService) {
 	sh := &standingHandler{handler: h, svc: svc}
-	type route struct {
-		method string
-		fn     http.HandlerFunc
-	}
-	for _, p := range []struct {
-		path   string
-		routes []route
-	}{
+	h.register(mux, []routePath{
 		{"/v1/standing-queries", []route{{"POST", sh.create}, {"GET", sh.list}}},
 		{"/v1/standing-queries/{id}", []route{{"GET", sh.get}, {"DELETE", sh.delete}}},
 		{"/v1/standing-queries/{id}/evidence", []route{{"PATCH", sh.update}, {"POST", sh.update}}},
-	} {
-		var allowed []string
-		for _, r := range p.routes {
-			pattern := r.method + " " + p.path
-			mux.Handle(pattern, h.wrap(pattern, r.fn))
-			allowed = append(allowed, r.method)
-			if r.method == "GET" {
-				allowed = append(allowed, "HEAD")
-			}
-		}
-		mux.Handle(p.path, h.wrap(p.path, h.methodNotAllowed(strings.Join(allowed, ", "))))
-	}
+	})
 }
 
 // scoped returns the request's context, addressing the tenant of
