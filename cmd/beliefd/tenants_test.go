@@ -1,6 +1,7 @@
 package main
 
 import (
+	"context"
 	"crypto/ecdsa"
 	"crypto/elliptic"
 	"crypto/rand"
@@ -9,6 +10,7 @@ import (
 	"crypto/x509/pkix"
 	"encoding/json"
 	"encoding/pem"
+	"fmt"
 	"io"
 	"math/big"
 	"net"
@@ -20,8 +22,11 @@ import (
 	"testing"
 	"time"
 
+	"github.com/redis/go-redis/v9"
+
 	"github.com/beliefd/beliefd/api/auth"
 	"github.com/beliefd/beliefd/service/jobs"
+	"github.com/beliefd/beliefd/worker/redisstore/redistest"
 )
 
 func TestServeAccessSettings(t *testing.T) {
@@ -234,4 +239,58 @@ func TestServeSaysItIsOpen(t *testing.T) {
 	}
 	p := startProc(t, "serve", "--http-addr", "127.0.0.1:0", "--grpc-addr", "127.0.0.1:0", "--workers", "0", "--preload=false")
 	p.waitFor(t, regexp.MustCompile(`no tokens configured: the API is open on loopback`), 30*time.Second)
+}
+
+// With --tenants-redis-key the tenants document lives in Redis and is read
+// again every --tenants-reload: a token added there is accepted, and one
+// removed is refused, without a restart.
+func TestServeTenantsFromRedis(t *testing.T) {
+	if testing.Short() {
+		t.Skip("starts processes")
+	}
+	rs := redistest.StartServer(t, redistest.Options{})
+	rdb := redis.NewClient(&redis.Options{Addr: rs.Addr()})
+	t.Cleanup(func() { _ = rdb.Close() })
+	ctx := context.Background()
+	first, _ := auth.NewToken()
+	second, _ := auth.NewToken()
+	put := func(tokens ...string) {
+		t.Helper()
+		d := auth.Document{Tenants: map[string]jobs.TenantPolicy{"alpha": {}}}
+		for i, tok := range tokens {
+			d.Tokens = append(d.Tokens, auth.TokenEntry{Label: fmt.Sprint("t", i), Tenant: "alpha", Role: auth.RoleMember, SHA256: auth.HashToken(tok)})
+		}
+		b, _ := json.Marshal(d)
+		if err := rdb.Set(ctx, "beliefd:tenants", b, 0).Err(); err != nil {
+			t.Fatal(err)
+		}
+	}
+	put(first)
+	p := startProc(t, "serve", "--redis", rs.URL(), "--tenants-redis-key", "beliefd:tenants", "--tenants-reload", "1s",
+		"--workers", "0", "--http-addr", "127.0.0.1:0", "--grpc-addr", "127.0.0.1:0")
+	base := p.waitFor(t, regexp.MustCompile(`serving on (http://[0-9.:]+) `), 30*time.Second)[1]
+	status := func(token string) int {
+		req, _ := http.NewRequest("GET", base+"/v1/models", nil)
+		req.Header.Set("Authorization", "Bearer "+token)
+		resp, err := http.DefaultClient.Do(req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		resp.Body.Close()
+		return resp.StatusCode
+	}
+	if a, b := status(first), status(second); a != 200 || b != 401 {
+		t.Fatalf("before the change: first token %d, second %d; want 200, 401", a, b)
+	}
+	put(second) // the first token is revoked, the second added
+	deadline := time.Now().Add(10 * time.Second)
+	for status(first) != 401 || status(second) != 200 {
+		if time.Now().After(deadline) {
+			t.Fatalf("10s after the change: first token %d, second %d; want 401, 200", status(first), status(second))
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
+	if strings.Contains(p.output(), first) || strings.Contains(p.output(), second) {
+		t.Error("the server's output holds a token")
+	}
 }
