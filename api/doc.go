@@ -17,7 +17,10 @@
 // exist. Model names are per tenant. An admin sees every tenant's jobs and
 // models; in its lists and references another tenant's model is named
 // "TENANT/NAME" and the open tenant's "/NAME". Without a tenants document
-// every caller is the open tenant "" with the admin role.
+// every caller is the open tenant "" with the admin role. With
+// --metrics-need-token, /metrics needs a token with the metrics role (which
+// may call nothing else) or the admin role, since the standing-query gauges
+// carry every tenant's posteriors.
 //
 // # HTTP API
 //

@@ -26,6 +26,9 @@ const (
 	AdminPrefix = "/v1/admin/"
 	// AdminService is the gRPC service whose methods need the admin role.
 	AdminService = "/belief.v1.AdminService/"
+	// MetricsPath serves the Prometheus metrics: open, unless
+	// RequireMetricsToken is on.
+	MetricsPath = "/metrics"
 )
 
 // openGRPC are the gRPC services that need no token.
@@ -35,6 +38,16 @@ var openGRPC = []string{"/grpc.health.v1.Health/", "/grpc.reflection.v1.ServerRe
 type Authenticator struct {
 	reg *Registry
 	log *slog.Logger
+	// metricsToken: MetricsPath needs a token with RoleMetrics or RoleAdmin.
+	metricsToken bool
+}
+
+// RequireMetricsToken makes MetricsPath need a token with the metrics or
+// the admin role when tokens are configured: the standing-query gauges
+// carry every tenant's posteriors. It returns a.
+func (a *Authenticator) RequireMetricsToken() *Authenticator {
+	a.metricsToken = true
+	return a
 }
 
 // New returns an Authenticator over reg; a nil reg leaves the API open
@@ -55,9 +68,9 @@ func (a *Authenticator) Registry() *Registry { return a.reg }
 // authenticate reads an Authorization value. Failures wrap
 // errmap.ErrUnauthenticated; their text names what is wrong and never the
 // token.
-func (a *Authenticator) authenticate(header, transport, route, remote string) (jobs.Principal, error) {
+func (a *Authenticator) authenticate(header, transport, route, remote string) (identity, error) {
 	if a.reg == nil {
-		return OpenPrincipal, nil
+		return identity{principal: OpenPrincipal}, nil
 	}
 	scheme, token, ok := strings.Cut(strings.TrimSpace(header), " ")
 	token = strings.TrimSpace(token)
@@ -71,12 +84,17 @@ func (a *Authenticator) authenticate(header, transport, route, remote string) (j
 		if id, known := a.reg.lookup(token); known {
 			a.log.Debug("auth: accepted", "transport", transport, "route", route, "tenant", id.principal.Tenant,
 				"admin", id.principal.Admin, "token_label", id.label)
-			return id.principal, nil
+			return id, nil
 		}
 		reason, problem = "unknown token", "the bearer token is not known (revoked, mistyped or for another server)"
 	}
 	a.log.Info("auth: refused", "transport", transport, "route", route, "remote", remote, "reason", reason)
-	return jobs.Principal{}, fmt.Errorf("%w: %s", errmap.ErrUnauthenticated, problem)
+	return identity{}, fmt.Errorf("%w: %s", errmap.ErrUnauthenticated, problem)
+}
+
+// metricsOnly is the error for a metrics-role token used on the API.
+func metricsOnly(what string) error {
+	return fmt.Errorf("%w: %s needs a token with the member or admin role (this token may only read %s)", jobs.ErrForbidden, what, MetricsPath)
 }
 
 // forbidden is the error for a call that needs the admin role.
@@ -90,11 +108,12 @@ func forbidden(what string) error {
 // request's context. Other paths pass through untouched.
 func (a *Authenticator) HTTP(next http.Handler) http.Handler {
 	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
-		if !strings.HasPrefix(r.URL.Path, APIPrefix) {
+		metrics := a.metricsToken && r.URL.Path == MetricsPath
+		if !strings.HasPrefix(r.URL.Path, APIPrefix) && !metrics {
 			next.ServeHTTP(w, r)
 			return
 		}
-		p, err := a.authenticate(r.Header.Get("Authorization"), "http", r.URL.Path, r.RemoteAddr)
+		id, err := a.authenticate(r.Header.Get("Authorization"), "http", r.URL.Path, r.RemoteAddr)
 		if err != nil {
 			challenge := `Bearer realm="beliefd"`
 			if r.Header.Get("Authorization") != "" {
@@ -102,6 +121,21 @@ func (a *Authenticator) HTTP(next http.Handler) http.Handler {
 			}
 			w.Header().Set("WWW-Authenticate", challenge)
 			errmap.Map(err).WriteHTTP(w)
+			return
+		}
+		p := id.principal
+		if metrics {
+			if !p.Admin && !id.metricsOnly {
+				a.log.Info("auth: metrics role needed", "transport", "http", "route", r.URL.Path, "tenant", p.Tenant)
+				errmap.Map(fmt.Errorf("%w: %s needs a token with the metrics or the admin role", jobs.ErrForbidden, MetricsPath)).WriteHTTP(w)
+				return
+			}
+			next.ServeHTTP(w, r)
+			return
+		}
+		if id.metricsOnly {
+			a.log.Info("auth: metrics-only token on the API", "transport", "http", "route", r.URL.Path, "tenant", p.Tenant)
+			errmap.Map(metricsOnly(r.URL.Path)).WriteHTTP(w)
 			return
 		}
 		if strings.HasPrefix(r.URL.Path, AdminPrefix) && !p.Admin {
@@ -131,9 +165,14 @@ func (a *Authenticator) grpcCheck(ctx context.Context, method string) (context.C
 	if pr, ok := peer.FromContext(ctx); ok && pr.Addr != nil {
 		remote = pr.Addr.String()
 	}
-	p, err := a.authenticate(header, "grpc", method, remote)
+	id, err := a.authenticate(header, "grpc", method, remote)
 	if err != nil {
 		return nil, errmap.GRPC(err, "")
+	}
+	p := id.principal
+	if id.metricsOnly {
+		a.log.Info("auth: metrics-only token on the API", "transport", "grpc", "route", method, "tenant", p.Tenant)
+		return nil, errmap.GRPC(metricsOnly(method), "")
 	}
 	if strings.HasPrefix(method, AdminService) && !p.Admin {
 		a.log.Info("auth: admin role needed", "transport", "grpc", "route", method, "tenant", p.Tenant)

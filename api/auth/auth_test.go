@@ -26,14 +26,14 @@ import (
 // fixture mints tokens for two tenants and an admin and returns the
 // document with their hashes.
 type fixture struct {
-	alpha, beta, admin string
-	doc                []byte
+	alpha, beta, admin, scrape string
+	doc                        []byte
 }
 
 func newFixture(t *testing.T) fixture {
 	t.Helper()
 	var f fixture
-	for _, tok := range []*string{&f.alpha, &f.beta, &f.admin} {
+	for _, tok := range []*string{&f.alpha, &f.beta, &f.admin, &f.scrape} {
 		var err error
 		if *tok, err = NewToken(); err != nil {
 			t.Fatal(err)
@@ -45,6 +45,7 @@ func newFixture(t *testing.T) fixture {
 			{Label: "alpha-ci", Tenant: "alpha", Role: RoleMember, SHA256: HashToken(f.alpha)},
 			{Label: "beta-ci", Tenant: "beta", Role: RoleMember, SHA256: HashToken(f.beta)},
 			{Label: "oncall", Tenant: "ops", Role: RoleAdmin, SHA256: HashToken(f.admin)},
+			{Label: "prometheus", Tenant: "ops", Role: RoleMetrics, SHA256: HashToken(f.scrape)},
 		},
 	}
 	var err error
@@ -248,6 +249,7 @@ func TestHTTPMiddleware(t *testing.T) {
 		{"metrics are open", "/metrics", "", 200, " false false", ""},
 		{"the page is open", "/", "", 200, " false false", ""},
 		{"a bad token on an open path is ignored", "/healthz", "Bearer nonsense", 200, " false false", ""},
+		{"a metrics token calls no API", "/v1/jobs", "Bearer " + f.scrape, 403, "may only read /metrics", ""},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
@@ -280,6 +282,43 @@ func TestHTTPMiddleware(t *testing.T) {
 	}
 }
 
+// With RequireMetricsToken, /metrics needs a token with the metrics or
+// the admin role; a member's token is refused there.
+func TestMetricsToken(t *testing.T) {
+	f := newFixture(t)
+	reg, err := NewRegistry(f.doc)
+	if err != nil {
+		t.Fatal(err)
+	}
+	h := New(reg, slog.New(slog.DiscardHandler)).RequireMetricsToken().HTTP(echo)
+	for _, tc := range []struct {
+		name, authz string
+		status      int
+		body        string
+	}{
+		{"no token", "", 401, "UNAUTHENTICATED"},
+		{"member", "Bearer " + f.alpha, 403, "metrics or the admin role"},
+		{"metrics role", "Bearer " + f.scrape, 200, " false false"},
+		{"admin", "Bearer " + f.admin, 200, " false false"},
+	} {
+		req := httptest.NewRequest("GET", MetricsPath, nil)
+		if tc.authz != "" {
+			req.Header.Set("Authorization", tc.authz)
+		}
+		rec := httptest.NewRecorder()
+		h.ServeHTTP(rec, req)
+		if rec.Code != tc.status || !strings.Contains(rec.Body.String(), tc.body) {
+			t.Errorf("%s: %d %s, want %d with %q", tc.name, rec.Code, rec.Body.String(), tc.status, tc.body)
+		}
+	}
+	// Open (no tenants document): nothing to require.
+	rec := httptest.NewRecorder()
+	New(nil, nil).RequireMetricsToken().HTTP(echo).ServeHTTP(rec, httptest.NewRequest("GET", MetricsPath, nil))
+	if rec.Code != 200 {
+		t.Errorf("open API /metrics: %d", rec.Code)
+	}
+}
+
 func TestGRPCInterceptors(t *testing.T) {
 	f := newFixture(t)
 	reg, err := NewRegistry(f.doc)
@@ -308,6 +347,7 @@ func TestGRPCInterceptors(t *testing.T) {
 		{"no token", "/belief.v1.JobService/GetJob", "", codes.Unauthenticated, jobs.Principal{}},
 		{"unknown token", "/belief.v1.ModelService/ListModels", "Bearer bfd1_x", codes.Unauthenticated, jobs.Principal{}},
 		{"member on admin service", "/belief.v1.AdminService/ListTenantUsage", "Bearer " + f.beta, codes.PermissionDenied, jobs.Principal{}},
+		{"metrics token", "/belief.v1.JobService/GetJob", "Bearer " + f.scrape, codes.PermissionDenied, jobs.Principal{}},
 		{"health is open", "/grpc.health.v1.Health/Check", "", codes.OK, jobs.Principal{}},
 		{"reflection is open", "/grpc.reflection.v1.ServerReflection/ServerReflectionInfo", "", codes.OK, jobs.Principal{}},
 	}

@@ -27,6 +27,9 @@ import (
 const (
 	RoleMember = "member"
 	RoleAdmin  = "admin"
+	// RoleMetrics may only read the Prometheus metrics, and only when
+	// serve requires a token for them (--metrics-need-token); it calls no API.
+	RoleMetrics = "metrics"
 )
 
 // TokenPrefix starts every token that NewToken mints.
@@ -111,8 +114,8 @@ func ParseDocument(data []byte) (*Document, error) {
 		if _, ok := d.Tenants[t.Tenant]; !ok {
 			return nil, bad("%s: tenant %q is not listed under \"tenants\"", where, t.Tenant)
 		}
-		if t.Role != RoleMember && t.Role != RoleAdmin {
-			return nil, bad("%s: role %q: want %q or %q", where, t.Role, RoleMember, RoleAdmin)
+		if t.Role != RoleMember && t.Role != RoleAdmin && t.Role != RoleMetrics {
+			return nil, bad("%s: role %q: want %q, %q or %q", where, t.Role, RoleMember, RoleAdmin, RoleMetrics)
 		}
 		h := strings.ToLower(t.SHA256)
 		if b, err := hex.DecodeString(h); err != nil || len(b) != sha256.Size {
@@ -186,6 +189,8 @@ func (r *Registry) Policy(tenant string) jobs.TenantPolicy {
 type identity struct {
 	principal jobs.Principal
 	label     string
+	// metricsOnly: the token has RoleMetrics.
+	metricsOnly bool
 }
 
 // lookup finds the entry of token. It hashes the token and compares the
@@ -204,7 +209,7 @@ func (r *Registry) lookup(token string) (identity, bool) {
 		return identity{}, false
 	}
 	t := s.doc.Tokens[found]
-	return identity{principal: jobs.Principal{Tenant: t.Tenant, Admin: t.Role == RoleAdmin}, label: t.Label}, true
+	return identity{principal: jobs.Principal{Tenant: t.Tenant, Admin: t.Role == RoleAdmin}, label: t.Label, metricsOnly: t.Role == RoleMetrics}, true
 }
 
 // Follow reads the document with fetch every interval until ctx ends and

@@ -184,6 +184,9 @@ func cmdServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		return err
 	}
 	authn := auth.New(p.tenants, log)
+	if cfg.MetricsToken {
+		authn.RequireMetricsToken()
+	}
 	admin := auth.NewAdmin(svc, authn, log)
 	logAccess(log, cfg, p.tenants, p.tenantsSrc, serverTLS != nil)
 

@@ -41,6 +41,7 @@ type serverConfig struct {
 	TenantsRedisKey string        // --tenants-redis-key, BELIEFD_TENANTS_REDIS_KEY (on --redis)
 	TenantsReload   time.Duration // --tenants-reload, BELIEFD_TENANTS_RELOAD
 	AllowOpenAccess bool          // --allow-open-access, BELIEFD_ALLOW_OPEN_ACCESS (serve only)
+	MetricsToken    bool          // --metrics-need-token, BELIEFD_METRICS_NEED_TOKEN (serve only)
 	TLSCert         string        // --tls-cert, BELIEFD_TLS_CERT (serve only)
 	TLSKey          string        // --tls-key, BELIEFD_TLS_KEY (serve only)
 }
@@ -52,6 +53,7 @@ func bindServerFlags(fs *flag.FlagSet, cfg *serverConfig, api bool) {
 		fs.StringVar(&cfg.HTTPAddr, "http-addr", "127.0.0.1:8080", "HTTP listen address (JSON API, events, metrics, health); ':8080' for every interface")
 		fs.StringVar(&cfg.GRPCAddr, "grpc-addr", "127.0.0.1:9090", "gRPC listen address; ':9090' for every interface")
 		fs.BoolVar(&cfg.AllowOpenAccess, "allow-open-access", false, "serve a non-loopback address without tokens: every caller is the open tenant with the admin role")
+		fs.BoolVar(&cfg.MetricsToken, "metrics-need-token", false, "/metrics needs a token with the metrics or admin role (its standing-query gauges carry every tenant's posteriors); needs a tenants document")
 		fs.StringVar(&cfg.TLSCert, "tls-cert", "", "PEM certificate (chain) file: serve HTTPS and gRPC over TLS (with --tls-key)")
 		fs.StringVar(&cfg.TLSKey, "tls-key", "", "PEM private key file of --tls-cert")
 		fs.IntVar(&cfg.MaxStanding, "max-standing-queries", 100, "standing queries allowed (all tenants); each adds gauges to /metrics")
@@ -116,6 +118,9 @@ func (c *serverConfig) Validate(api bool) error {
 		}
 		if (c.TLSCert == "") != (c.TLSKey == "") {
 			return bad("--tls-cert and --tls-key go together: give both or neither")
+		}
+		if c.MetricsToken && !c.tenantsConfigured() {
+			return bad("--metrics-need-token needs a tenants document (--tenants-file or --tenants-redis-key)")
 		}
 		if !c.tenantsConfigured() && !c.AllowOpenAccess {
 			for _, a := range []struct{ name, v string }{{"--http-addr", c.HTTPAddr}, {"--grpc-addr", c.GRPCAddr}} {

@@ -119,9 +119,9 @@ func tokenEntryLine(e auth.TokenEntry) string {
 }
 
 func cmdToken(_ context.Context, args []string, stdout, _ io.Writer) error {
-	fs := newFlagSet("token", "token --tenant NAME [--role member|admin] [--label TEXT]", stdout)
+	fs := newFlagSet("token", "token --tenant NAME [--role member|admin|metrics] [--label TEXT]", stdout)
 	tenant := fs.String("tenant", "", "tenant the token belongs to (listed under \"tenants\" in the tenants document)")
-	role := fs.String("role", auth.RoleMember, "member (the tenant's own models and jobs) or admin (every tenant's, and the admin endpoints)")
+	role := fs.String("role", auth.RoleMember, "member (the tenant's own models and jobs), admin (every tenant's, and the admin endpoints) or metrics (reads /metrics only, for a Prometheus that scrapes with --metrics-need-token)")
 	label := fs.String("label", "", "names the token in logs, such as the team or pipeline that uses it")
 	if err := parseFlags(fs, args); err != nil {
 		return err
@@ -135,8 +135,8 @@ func cmdToken(_ context.Context, args []string, stdout, _ io.Writer) error {
 	if err := jobs.CheckTenantName(*tenant); err != nil {
 		return fmt.Errorf("%w: --tenant: %v", errUsage, err)
 	}
-	if *role != auth.RoleMember && *role != auth.RoleAdmin {
-		return fmt.Errorf("%w: --role %q: want %s or %s", errUsage, *role, auth.RoleMember, auth.RoleAdmin)
+	if *role != auth.RoleMember && *role != auth.RoleAdmin && *role != auth.RoleMetrics {
+		return fmt.Errorf("%w: --role %q: want %s, %s or %s", errUsage, *role, auth.RoleMember, auth.RoleAdmin, auth.RoleMetrics)
 	}
 	tok, err := auth.NewToken()
 	if err != nil {

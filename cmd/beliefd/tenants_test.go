@@ -243,7 +243,8 @@ func TestServeSaysItIsOpen(t *testing.T) {
 
 // With --tenants-redis-key the tenants document lives in Redis and is read
 // again every --tenants-reload: a token added there is accepted, and one
-// removed is refused, without a restart.
+// removed is refused, without a restart. With --metrics-need-token,
+// /metrics answers the metrics role only.
 func TestServeTenantsFromRedis(t *testing.T) {
 	if testing.Short() {
 		t.Skip("starts processes")
@@ -254,9 +255,11 @@ func TestServeTenantsFromRedis(t *testing.T) {
 	ctx := context.Background()
 	first, _ := auth.NewToken()
 	second, _ := auth.NewToken()
+	scrape, _ := auth.NewToken()
 	put := func(tokens ...string) {
 		t.Helper()
-		d := auth.Document{Tenants: map[string]jobs.TenantPolicy{"alpha": {}}}
+		d := auth.Document{Tenants: map[string]jobs.TenantPolicy{"alpha": {}, "ops": {}},
+			Tokens: []auth.TokenEntry{{Label: "prometheus", Tenant: "ops", Role: auth.RoleMetrics, SHA256: auth.HashToken(scrape)}}}
 		for i, tok := range tokens {
 			d.Tokens = append(d.Tokens, auth.TokenEntry{Label: fmt.Sprint("t", i), Tenant: "alpha", Role: auth.RoleMember, SHA256: auth.HashToken(tok)})
 		}
@@ -267,10 +270,10 @@ func TestServeTenantsFromRedis(t *testing.T) {
 	}
 	put(first)
 	p := startProc(t, "serve", "--redis", rs.URL(), "--tenants-redis-key", "beliefd:tenants", "--tenants-reload", "1s",
-		"--workers", "0", "--http-addr", "127.0.0.1:0", "--grpc-addr", "127.0.0.1:0")
+		"--metrics-need-token", "--workers", "0", "--http-addr", "127.0.0.1:0", "--grpc-addr", "127.0.0.1:0")
 	base := p.waitFor(t, regexp.MustCompile(`serving on (http://[0-9.:]+) `), 30*time.Second)[1]
-	status := func(token string) int {
-		req, _ := http.NewRequest("GET", base+"/v1/models", nil)
+	statusOf := func(path, token string) int {
+		req, _ := http.NewRequest("GET", base+path, nil)
 		req.Header.Set("Authorization", "Bearer "+token)
 		resp, err := http.DefaultClient.Do(req)
 		if err != nil {
@@ -278,6 +281,14 @@ func TestServeTenantsFromRedis(t *testing.T) {
 		}
 		resp.Body.Close()
 		return resp.StatusCode
+	}
+	status := func(token string) int { return statusOf("/v1/models", token) }
+	// --metrics-need-token: /metrics for the metrics role, not for members.
+	if a, b, c := statusOf("/metrics", ""), statusOf("/metrics", first), statusOf("/metrics", scrape); a != 401 || b != 403 || c != 200 {
+		t.Errorf("/metrics without a token, as a member, as the metrics role: %d, %d, %d; want 401, 403, 200", a, b, c)
+	}
+	if c := status(scrape); c != 403 {
+		t.Errorf("/v1/models with the metrics token: %d; want 403", c)
 	}
 	if a, b := status(first), status(second); a != 200 || b != 401 {
 		t.Fatalf("before the change: first token %d, second %d; want 200, 401", a, b)
