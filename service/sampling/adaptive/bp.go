@@ -2,6 +2,7 @@ package adaptive
 
 import (
 	"math"
+	"slices"
 
 	"github.com/beliefd/beliefd/service/model"
 )
@@ -97,6 +98,53 @@ func propagate(net *model.Network, hard []int32, soft [][]float64, maxSweeps int
 		maxCard = max(maxCard, card(v))
 		maxPar = max(maxPar, len(net.Vars[v].Parents))
 	}
+	// outs[v][j] accumulates v's λ message to parent j within a sweep.
+	outs := make([][][]float64, n)
+	for v := range net.Vars {
+		if np := len(net.Vars[v].Parents); np > 0 && below[v] {
+			outs[v] = make([][]float64, np)
+			for j, p := range net.Vars[v].Parents {
+				outs[v][j] = make([]float64, card(p))
+			}
+		}
+	}
+	// Skipping work whose result is known: a message is a function of the
+	// sender's inputs, so when none of them changed (bit for bit) since the
+	// sender last computed it, and its last update left it equal to what
+	// was computed (settled: damping had nothing left to move), computing
+	// it again would change nothing. Stamps count computations: a message
+	// changed at the computation numbered clock gets that stamp; downAt and
+	// upAt are the numbers of a variable's last down and up computations.
+	piStamp, lamStamp := make([][]int, n), make([][]int, n)
+	piSettled, lamSettled := make([][]bool, n), make([][]bool, n)
+	for v := range net.Vars {
+		np := len(net.Vars[v].Parents)
+		piStamp[v], lamStamp[v] = make([]int, np), make([]int, np)
+		piSettled[v], lamSettled[v] = make([]bool, np), make([]bool, np)
+	}
+	downAt, upAt := make([]int, n), make([]int, n)
+	for v := range downAt {
+		downAt[v], upAt[v] = -1, -1
+	}
+	clock := 0
+	// unchangedSince reports whether the messages into v (π from its
+	// parents, λ from its children) are as they were at computation at.
+	unchangedSince := func(v, at int) bool {
+		if at < 0 {
+			return false
+		}
+		for _, st := range piStamp[v] {
+			if st > at {
+				return false
+			}
+		}
+		for _, sl := range childSlots[v] {
+			if lamStamp[sl.child][sl.j] > at {
+				return false
+			}
+		}
+		return true
+	}
 	ctr := make([]int, maxPar)
 	pre := make([]float64, maxPar+1)
 	suf := make([]float64, maxPar+1)
@@ -121,6 +169,21 @@ func propagate(net *model.Network, hard []int32, soft [][]float64, maxSweeps int
 		change := 0.0
 		// Down: π of every variable, then its messages to the children.
 		for v := range net.Vars {
+			kids := childSlots[v]
+			if len(kids) == 0 {
+				continue // π(v) is only needed for the messages
+			}
+			if unchangedSince(v, downAt[v]) {
+				settled := true
+				for _, sl := range kids {
+					settled = settled && piSettled[sl.child][sl.j]
+				}
+				if settled {
+					continue
+				}
+			}
+			clock++
+			downAt[v] = clock
 			x := &net.Vars[v]
 			c := card(v)
 			pv := piV[v]
@@ -142,11 +205,6 @@ func propagate(net *model.Network, hard []int32, soft [][]float64, maxSweeps int
 				next(ctr[:np], x, net)
 			}
 			normalizeSum(pv)
-			if len(childSlots[v]) == 0 {
-				continue
-			}
-			lambdaIn(v)
-			kids := childSlots[v]
 			// Message to child k: π(v)·evLik(v)·Π_{k'≠k} λ_{k'}.
 			for k, sl := range kids {
 				m := msg[:c]
@@ -166,7 +224,12 @@ func propagate(net *model.Network, hard []int32, soft [][]float64, maxSweeps int
 					copy(m, pv)
 					normalizeSum(m)
 				}
-				change = math.Max(change, update(piMsg[sl.child][sl.j], m, damp))
+				d, changed, settled := update(piMsg[sl.child][sl.j], m, damp)
+				change = math.Max(change, d)
+				if changed {
+					piStamp[sl.child][sl.j] = clock
+				}
+				piSettled[sl.child][sl.j] = settled
 			}
 		}
 		// Up: λ messages from every variable with evidence below it.
@@ -176,12 +239,17 @@ func propagate(net *model.Network, hard []int32, soft [][]float64, maxSweeps int
 			if np == 0 || !below[v] {
 				continue
 			}
+			if unchangedSince(v, upAt[v]) && !slices.Contains(lamSettled[v], false) {
+				continue
+			}
+			clock++
+			upAt[v] = clock
 			lambdaIn(v)
 			c := card(v)
 			l := lamIn[v]
-			out := make([][]float64, np) // accumulated messages
-			for j, p := range x.Parents {
-				out[j] = make([]float64, card(p))
+			out := outs[v] // accumulated messages
+			for j := range out {
+				clear(out[j])
 			}
 			clear(ctr[:np])
 			for r := 0; r < x.Rows; r++ {
@@ -212,7 +280,12 @@ func propagate(net *model.Network, hard []int32, soft [][]float64, maxSweeps int
 						out[j][k] = 1 / float64(len(out[j]))
 					}
 				}
-				change = math.Max(change, update(lamMsg[v][j], out[j], damp))
+				d, changed, settled := update(lamMsg[v][j], out[j], damp)
+				change = math.Max(change, d)
+				if changed {
+					lamStamp[v][j] = clock
+				}
+				lamSettled[v][j] = settled
 			}
 		}
 		res.sweeps = sweep
@@ -248,15 +321,19 @@ func next(ctr []int, x *model.Node, net *model.Network) {
 	}
 }
 
-// update moves old towards new (damped) and returns the largest change.
-func update(old, nw []float64, damp float64) float64 {
-	d := 0.0
+// update moves old towards new (damped) and returns the largest change,
+// whether any entry changed, and whether old now equals nw (settled: an
+// update with the same nw would leave it as it is).
+func update(old, nw []float64, damp float64) (d float64, changed, settled bool) {
+	settled = true
 	for s := range old {
 		v := (1-damp)*nw[s] + damp*old[s]
 		d = math.Max(d, math.Abs(v-old[s]))
+		changed = changed || v != old[s]
+		settled = settled && v == nw[s]
 		old[s] = v
 	}
-	return d
+	return d, changed, settled
 }
 
 func uniform(n int) []float64 {

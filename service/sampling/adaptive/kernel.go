@@ -262,8 +262,21 @@ func (s *Sampler) newTrack(v, state int, soft [][]float64) *track {
 		}
 		lams = [][][]float64{t.bp.lambda}
 	} else {
+		// The two propagations are independent: with more than one
+		// worker the upward pass runs beside the loopy one.
+		var up *bpResult
+		done := make(chan struct{})
+		if s.opt.Workers > 1 {
+			go func() {
+				defer close(done)
+				up = propagate(s.net, t.ev, soft, 1)
+			}()
+		} else {
+			up = propagate(s.net, t.ev, soft, 1)
+			close(done)
+		}
 		t.bp = propagate(s.net, t.ev, soft, bpMaxSweeps)
-		up := propagate(s.net, t.ev, soft, 1)
+		<-done
 		t.bp.contradiction = t.bp.contradiction || up.contradiction
 		lams = [][][]float64{t.bp.lambda, up.lambda}
 	}
@@ -460,8 +473,9 @@ func (s *Sampler) rebuild(t *track) {
 // its weight P(x, e)/Q(x) divided by 2^t.log2Ref. x must hold t's
 // observed states (fillEvidence); a draw sets the sampled ones. A sample
 // that contradicts the evidence returns 0 as soon as that is known.
-// drawRows is the same draw (the same numbers) that also records the
-// table offset of every sampled variable's row in offs, for learning.
+// drawRows is the same draw (the same numbers) that also records, for
+// learning, the table offset of the drawn entry (row offset plus state) of
+// the j-th sampled variable in cells[j], in the order of t.sampled.
 func (s *Sampler) draw(t *track, r *sampling.Rand, x []int32) float64 {
 	steps, parVar, parMul2, tab := t.steps, s.parVar, s.parMul2, t.tab
 	w := t.constM
@@ -494,10 +508,11 @@ func (s *Sampler) draw(t *track, r *sampling.Rand, x []int32) float64 {
 	return math.Ldexp(w, 500*shift+t.constE-t.log2Ref)
 }
 
-func (s *Sampler) drawRows(t *track, r *sampling.Rand, x, offs []int32) float64 {
+func (s *Sampler) drawRows(t *track, r *sampling.Rand, x, cells []int32) float64 {
 	steps, parVar, parMul2, tab := t.steps, s.parVar, s.parMul2, t.tab
 	w := t.constM
 	shift := 0
+	j := 0
 	for i := range steps {
 		st := &steps[i]
 		off := st.tab2
@@ -515,7 +530,8 @@ func (s *Sampler) drawRows(t *track, r *sampling.Rand, x, offs []int32) float64 
 			k := pick(row[:c], r.Float64())
 			x[st.v] = k
 			w *= row[c+k]
-			offs[st.v] = off >> 1
+			cells[j] = off>>1 + k
+			j++
 		}
 		if outOfRange(w) {
 			if w == 0 {

@@ -18,16 +18,23 @@ const learnChunk = 1024
 // stageStats are the weighted state counts of (a chunk of) a learning
 // stage: counts[off+k] sums the weights of the samples that drew state k
 // in the table row at offset off, visits[off] counts them; touched lists
-// the rows visited, in first-visit order. stateW sums the weights per
-// target state (main track only), for the expected length of the run.
+// the rows visited (each row's update is independent of the others, so
+// their order does not matter). stateW sums the weights per target state
+// (main track only), for the expected length of the run. A chunk counts
+// visits per table entry in cellVisits while it draws (one index per
+// sampled variable and sample, no branch) and turns them into row visits
+// and touched rows at its end; cells holds the drawn entries of a sample.
 type stageStats struct {
-	counts  []float64
-	visits  []int32
-	touched []int32
-	stateW  []float64
-	n       int64
-	sumW    float64
-	sumW2   float64
+	counts     []float64
+	visits     []int32
+	touched    []int32
+	stateW     []float64
+	cellVisits []int32
+	cells      []int32
+	x          []int32
+	n          int64
+	sumW       float64
+	sumW2      float64
 }
 
 func (s *Sampler) newStageStats() *stageStats {
@@ -98,17 +105,24 @@ func (s *Sampler) drawStage(ctx context.Context, t *track, i, stage, m int) (*st
 
 func (s *Sampler) drawChunk(t *track, i, stage int, c int64, n int, st *stageStats, abort *atomic.Bool) bool {
 	s.resetStage(st)
-	x := make([]int32, len(s.nodes))
-	offs := make([]int32, len(s.nodes))
+	if st.cellVisits == nil {
+		st.cellVisits = make([]int32, len(s.prob))
+		st.x = make([]int32, len(s.nodes))
+	}
+	if cap(st.cells) < len(t.sampled) {
+		st.cells = make([]int32, len(t.sampled))
+	}
+	x, cells := st.x, st.cells[:len(t.sampled)]
 	fillEvidence(t, x)
 	r := sampling.NewStream(s.opt.Seed, learnStream(i, stage, c))
 	targets, tOff := s.targets, s.tOff
-	counts, visits := st.counts, st.visits
+	counts, cellVisits := st.counts, st.cellVisits
 	for k := 0; k < n; k++ {
 		if k&(abortEvery-1) == abortEvery-1 && abort.Load() {
+			clear(cellVisits) // st may be used again
 			return false
 		}
-		w := s.drawRows(t, &r, x, offs)
+		w := s.drawRows(t, &r, x, cells)
 		if !(w > 0) {
 			continue
 		}
@@ -122,13 +136,26 @@ func (s *Sampler) drawChunk(t *track, i, stage int, c int64, n int, st *stageSta
 		if s.opt.temper > 0 {
 			w = math.Pow(w, s.opt.temper)
 		}
-		for _, v := range t.sampled {
-			off := offs[v]
-			if visits[off] == 0 {
-				st.touched = append(st.touched, off)
+		for _, e := range cells {
+			counts[e] += w
+			cellVisits[e]++
+		}
+	}
+	// Row visits (counted on the row's first entry) and the rows touched.
+	for _, v := range t.sampled {
+		nd := &s.nodes[v]
+		c := int(nd.card)
+		for off := int(nd.tab); off < int(nd.tab)+s.net.Vars[v].Rows*c; off += c {
+			cv := cellVisits[off : off+c]
+			sum := int32(0)
+			for _, n := range cv {
+				sum += n
 			}
-			visits[off]++ // row visits counted on the row's first entry
-			counts[off+x[v]] += w
+			if sum > 0 {
+				st.visits[off] = sum
+				st.touched = append(st.touched, int32(off))
+				clear(cv)
+			}
 		}
 	}
 	st.n = int64(n)
