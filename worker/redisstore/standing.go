@@ -78,30 +78,9 @@ func (s *StandingStore) Close() error {
 	return nil
 }
 
-// fail maps a Redis error as the job store does: the caller's context
-// error once it has ended; transient server replies and network errors
-// wrap jobs.ErrUnavailable.
+// fail maps a Redis error as the job store does (failRedis).
 func (s *StandingStore) fail(ctx context.Context, op string, err error) error {
-	if err == nil {
-		return nil
-	}
-	if cerr := ctx.Err(); cerr != nil {
-		if errors.Is(err, cerr) {
-			return fmt.Errorf("redisstore: standing %s: %w", op, err)
-		}
-		return fmt.Errorf("redisstore: standing %s: %w (%v)", op, cerr, err)
-	}
-	var re redis.Error
-	if errors.As(err, &re) {
-		transient := false
-		for _, p := range []string{"LOADING", "READONLY", "MASTERDOWN", "BUSY", "CLUSTERDOWN", "TRYAGAIN", "NOREPLICAS"} {
-			transient = transient || strings.HasPrefix(re.Error(), p)
-		}
-		if !transient {
-			return fmt.Errorf("redisstore: standing %s: %w", op, err)
-		}
-	}
-	return fmt.Errorf("redisstore: standing %s: %w: %w", op, jobs.ErrUnavailable, err)
+	return failRedis(ctx, "redisstore: standing "+op, err)
 }
 
 // Key names (doc.go lists them).

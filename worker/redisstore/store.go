@@ -252,6 +252,12 @@ func (s *Store) Close() error {
 // READONLY, BUSY...) and every network or pool error wrap
 // jobs.ErrUnavailable; other server errors are wrapped as they are.
 func (s *Store) fail(ctx context.Context, op string, err error) error {
+	return failRedis(ctx, "redisstore: "+op, err)
+}
+
+// failRedis is fail with the message prefix given whole, for every Redis
+// client of the package.
+func failRedis(ctx context.Context, prefix string, err error) error {
 	if err == nil {
 		return nil
 	}
@@ -259,15 +265,15 @@ func (s *Store) fail(ctx context.Context, op string, err error) error {
 		// The caller gave up (a read deadline taken from ctx shows as an
 		// i/o timeout): report the caller's reason.
 		if errors.Is(err, cerr) {
-			return fmt.Errorf("redisstore: %s: %w", op, err)
+			return fmt.Errorf("%s: %w", prefix, err)
 		}
-		return fmt.Errorf("redisstore: %s: %w (%v)", op, cerr, err)
+		return fmt.Errorf("%s: %w (%v)", prefix, cerr, err)
 	}
 	var re redis.Error
 	if errors.As(err, &re) && !transientReply(re.Error()) {
-		return fmt.Errorf("redisstore: %s: %w", op, err)
+		return fmt.Errorf("%s: %w", prefix, err)
 	}
-	return fmt.Errorf("redisstore: %s: %w: %w", op, jobs.ErrUnavailable, err)
+	return fmt.Errorf("%s: %w: %w", prefix, jobs.ErrUnavailable, err)
 }
 
 // transientReply reports whether a server error reply means the server
