@@ -19,6 +19,7 @@ import (
 	beliefv1 "github.com/beliefd/beliefd/proto/belief/v1"
 	"github.com/beliefd/beliefd/service/infer"
 	"github.com/beliefd/beliefd/service/jobs"
+	"github.com/beliefd/beliefd/service/sampling"
 	"github.com/beliefd/beliefd/service/standing"
 	"github.com/beliefd/beliefd/worker/redisstore"
 )
@@ -246,10 +247,7 @@ func printStanding(w io.Writer, q *beliefv1.StandingQuery, order map[string][]st
 		}
 		for _, s := range names {
 			iv := states[s]
-			span := "exact"
-			if !exact {
-				span = fmt.Sprintf("[%s, %s]", prob(iv.GetLo()), prob(iv.GetHi()))
-			}
+			span := interval(sampling.Interval{P: iv.GetP(), Lo: iv.GetLo(), Hi: iv.GetHi()}, exact)
 			fmt.Fprintf(tw, "%s\t%s\t%s\t%s\n", t, s, prob(iv.GetP()), span)
 		}
 	}
